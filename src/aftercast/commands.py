@@ -1,0 +1,217 @@
+"""Command handlers behind `cli.py`: load the config, open the store, call the stages."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from importlib import resources
+from pathlib import Path
+
+from rich.console import Console
+from sqlalchemy import Engine
+
+from aftercast.cli import EXIT_UNREADABLE, print_json
+from aftercast.config import Config, load_config
+from aftercast.cycle import run_cycle
+from aftercast.errors import AftercastError, InputFileError
+from aftercast.ingest import ingest_path
+from aftercast.periods import parse_instant
+from aftercast.report import status_json, window_status
+from aftercast.store.db import check_current, make_engine, migrate
+from aftercast.store.queries import iter_pair_export
+
+
+def _engine(config: Config) -> Engine:
+    return make_engine(config.store.url, config.store.echo)
+
+
+def open_store(config: Config) -> Engine:
+    """An engine on a store whose schema is current (else one line saying how to migrate)."""
+    engine = _engine(config)
+    check_current(engine)
+    return engine
+
+
+def _now(text: str | None) -> int | None:
+    if text is None:
+        return None
+    try:
+        return parse_instant(text)
+    except ValueError:
+        raise AftercastError(f"--now {text!r} is not an ISO 8601 time") from None
+
+
+def starter_config_text() -> str:
+    return resources.files("aftercast").joinpath("starter.yaml").read_text(encoding="utf-8")
+
+
+def cmd_init(args: argparse.Namespace) -> int:
+    if args.write_config:
+        path: Path = args.write_config
+        if path.exists():
+            raise AftercastError(f"{path}: already exists; not overwritten")
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(starter_config_text(), encoding="utf-8")
+        print(f"wrote starter config to {path}")
+        return 0
+    config = load_config(args.config)
+    revision = migrate(_engine(config))
+    print(f"store ready at schema revision {revision}")
+    return 0
+
+
+def cmd_ingest(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    engine = open_store(config)
+    failed = False
+    reports = []
+    for path in args.paths:
+        try:
+            report = ingest_path(engine, config, args.kind, path)
+        except InputFileError as exc:
+            print(f"aftercast: error: {exc}", file=sys.stderr)
+            failed = True
+            continue
+        reports.append(report)
+        for line in report.examples:
+            print(f"rejected: {line}", file=sys.stderr)
+        if report.ignored_columns:
+            print(
+                f"note: {path}: ignored columns {', '.join(report.ignored_columns)}",
+                file=sys.stderr,
+            )
+        if not args.json:
+            print(
+                f"{path}: {report.accepted} accepted, {report.revised} revised, "
+                f"{report.rejected} rejected, {report.unchanged} unchanged"
+            )
+    if args.json:
+        if len(reports) == 1:
+            print_json(reports[0].as_json())
+        else:
+            print_json(
+                {"files": [r.as_json() for r in reports], **_totals([r.as_json() for r in reports])}
+            )
+    return EXIT_UNREADABLE if failed else 0
+
+
+def _totals(rows: list[dict[str, object]]) -> dict[str, object]:
+    totals: dict[str, object] = {}
+    for key in ("accepted", "rejected", "unchanged", "revised"):
+        totals[key] = sum(int(r[key]) for r in rows)  # type: ignore[call-overload]
+    reasons: dict[str, int] = {}
+    for row in rows:
+        for reason, count in row["rejected_reasons"].items():  # type: ignore[attr-defined]
+            reasons[reason] = reasons.get(reason, 0) + count
+    totals["rejected_reasons"] = reasons
+    return totals
+
+
+def cmd_cycle(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    report = run_cycle(open_store(config), config, _now(args.now))
+    if args.json:
+        print_json(report.as_json())
+    else:
+        print(
+            f"cycle {report.cycle_id}: {report.pairs_scored} pairs scored in {report.seconds:.2f}s"
+        )
+    return 0
+
+
+def _window(config: Config, name: str | None):  # noqa: ANN202 - WindowConfig
+    windows = config.all_windows()
+    if name is None:
+        return windows[0]
+    for window in windows:
+        if window.name == name:
+            return window
+    raise AftercastError(
+        f"--window {name!r}: no such window; configured: " + ", ".join(w.name for w in windows)
+    )
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    engine = open_store(config)
+    import time
+
+    now = _now(args.now) or int(time.time())
+    rows = window_status(engine, _window(config, args.window), now)
+    records = status_json(rows) if len(rows) else []
+    if args.json:
+        print_json(records)
+        return 0
+    print_status_table(records)
+    return 0
+
+
+def print_status_table(records: list[dict[str, object]]) -> None:
+    from rich.table import Table
+
+    table = Table(title="aftercast status", show_lines=False)
+    levels = sorted({lv for r in records for lv in r["coverage"]}, key=float)  # type: ignore[union-attr]
+    for column in [
+        "series",
+        "model",
+        "h",
+        "n",
+        "MAE",
+        "RMSE",
+        "MAPE %",
+        "MASE",
+        *[f"cov {lv}%" for lv in levels],
+    ]:
+        table.add_column(column, justify="left" if column in ("series", "model") else "right")
+
+    def fmt(value: object, digits: int = 2) -> str:
+        return "-" if value is None else f"{value:.{digits}f}"  # type: ignore[str-format]
+
+    for r in records:
+        coverage = r["coverage"]
+        table.add_row(
+            str(r["series_id"]),
+            str(r["model"]),
+            str(r["horizon"]),
+            str(r["n"]),
+            fmt(r["mae"]),
+            fmt(r["rmse"]),
+            fmt(r["mape"], 1),
+            fmt(r["mase"]),
+            *[fmt(coverage.get(lv), 2) for lv in levels],
+        )  # type: ignore[union-attr]
+    Console().print(table)
+
+
+def cmd_scores(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    engine = open_store(config)
+    output: Path = args.output
+    output.parent.mkdir(parents=True, exist_ok=True)
+    rows = 0
+    with engine.connect() as connection, output.open("w", encoding="utf-8") as handle:
+        for index, frame in enumerate(iter_pair_export(connection)):
+            from aftercast.periods import to_iso
+
+            for column in ("issued_at", "target_at"):
+                frame[column] = frame[column].map(to_iso)
+            frame = frame.drop(columns=["forecast_id", "target_period"])
+            if args.format == "csv":
+                frame.to_csv(handle, index=False, header=index == 0)
+            else:
+                handle.write(frame.to_json(orient="records", lines=True))
+                if not frame.empty:
+                    handle.write("\n")
+            rows += len(frame)
+    print(f"wrote {rows} pairs to {output}")
+    return 0
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from aftercast.demo import run_demo
+
+    return run_demo(args.folder)
+
+
+__all__ = ["cmd_init", "cmd_ingest", "cmd_cycle", "cmd_status", "cmd_scores", "cmd_demo", "json"]

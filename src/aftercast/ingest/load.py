@@ -1,0 +1,207 @@
+"""Writing validated rows to the store, idempotently.
+
+Each chunk is compared with what is stored (via a staged key table and one join): new rows are
+inserted, identical rows counted unchanged, changed rows replaced. A changed actual is a
+revision: the new value wins, its previous values stay in `actual_history`, and the match queue
+gets the period so the next cycle rescores every pair that used it. Every write of a chunk is one
+transaction, so a crash loses at most the chunk in flight and re-ingesting finishes the job.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import Connection, text
+
+from aftercast.ingest.validate import Checked, bound_signature
+from aftercast.store import schema
+from aftercast.store.bulk import allocate_ids, delete_by_ids, insert_frame, read_frame, stage_keys
+
+
+@dataclass
+class Written:
+    accepted: int = 0
+    unchanged: int = 0
+    revised: int = 0
+
+    def add(self, other: Written) -> None:
+        self.accepted += other.accepted
+        self.unchanged += other.unchanged
+        self.revised += other.revised
+
+
+def enqueue(connection: Connection, series_id: np.ndarray, period: np.ndarray, kind: int) -> None:
+    """Add (series, period) to the match queue for the next cycle, once each."""
+    keys = pd.DataFrame({"series_id": series_id, "period": period}).drop_duplicates()
+    if keys.empty:
+        return
+    keys["kind"] = kind
+    staged = stage_keys(connection, "queue", keys)
+    connection.execute(
+        text(
+            f"INSERT INTO match_queue (series_id, period, kind) SELECT t.series_id, t.period, t.kind "
+            f"FROM {staged} t WHERE NOT EXISTS (SELECT 1 FROM match_queue q WHERE "
+            "q.series_id = t.series_id AND q.period = t.period AND q.kind = t.kind)"
+        )
+    )
+
+
+def _existing_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFrame:
+    keys = rows[["series_id", "model_id", "issued_at", "target_at"]]
+    staged = stage_keys(connection, "forecast_keys", keys)
+    found = read_frame(
+        connection,
+        f"SELECT f.id, f.series_id, f.model_id, f.issued_at, f.target_at, f.point FROM forecasts f "
+        f"JOIN {staged} k ON f.series_id = k.series_id AND f.model_id = k.model_id "
+        "AND f.issued_at = k.issued_at AND f.target_at = k.target_at",
+    )
+    if found.empty:
+        return found.assign(_bounds=pd.Series(dtype=str))
+    staged_ids = stage_keys(
+        connection, "found_ids", found[["id"]].rename(columns={"id": "forecast_id"})
+    )
+    intervals = read_frame(
+        connection,
+        f"SELECT i.forecast_id AS row, i.level, i.lower, i.upper FROM forecast_intervals i "
+        f"JOIN {staged_ids} s ON s.forecast_id = i.forecast_id",
+    )
+    quantiles = read_frame(
+        connection,
+        f"SELECT q.forecast_id AS row, q.prob, q.value FROM forecast_quantiles q "
+        f"JOIN {staged_ids} s ON s.forecast_id = q.forecast_id",
+    )
+    found["_bounds"] = bound_signature(intervals, quantiles, pd.Index(found["id"])).to_numpy()
+    return found
+
+
+def write_forecasts(
+    connection: Connection,
+    checked: Checked,
+    series_ids: pd.Series,
+    model_ids: dict[str, int],
+    now: int,
+) -> Written:
+    """Insert new forecasts, replace changed ones, count identical ones; queue their targets."""
+    rows = checked.good.copy()
+    if rows.empty:
+        return Written(unchanged=checked.duplicates)
+    rows["series_id"] = series_ids.reindex(rows["series_key"]).to_numpy(dtype="int64")
+    rows["model_id"] = rows["model"].map(model_ids).astype("int64")
+    rows["_bounds"] = bound_signature(checked.intervals, checked.quantiles, rows.index).to_numpy()
+    existing = _existing_forecasts(connection, rows)
+    merged = rows.reset_index(names="row").merge(
+        existing,
+        how="left",
+        on=["series_id", "model_id", "issued_at", "target_at"],
+        suffixes=("", "_stored"),
+    )
+    is_new = merged["id"].isna()
+    same = (
+        ~is_new
+        & (merged["point"] == merged["point_stored"])
+        & (merged["_bounds"] == merged["_bounds_stored"])
+    )
+    changed = merged[~is_new & ~same]
+    fresh = merged[is_new].copy()
+    fresh["id"] = allocate_ids(connection, schema.forecasts, len(fresh))
+    delete_by_ids(
+        connection, [schema.forecast_intervals, schema.forecast_quantiles], changed["id"].to_numpy()
+    )
+    if len(changed):
+        staged = stage_keys(connection, "changed", changed[["id"]])
+        connection.execute(text(f"DELETE FROM forecasts WHERE id IN (SELECT id FROM {staged})"))
+    written = pd.concat([fresh, changed])
+    written["id"] = written["id"].astype("int64")
+    written["ingested_at"] = now
+    columns = [
+        "id",
+        "series_id",
+        "model_id",
+        "issued_at",
+        "target_at",
+        "issue_period",
+        "target_period",
+        "horizon",
+        "point",
+        "ingested_at",
+    ]
+    insert_frame(
+        connection,
+        schema.forecasts,
+        written[columns].astype({"issued_at": "int64", "target_at": "int64"}),
+    )
+    row_to_id = pd.Series(written["id"].to_numpy(), index=written["row"].to_numpy())
+    _write_children(connection, checked, row_to_id)
+    enqueue(
+        connection, written["series_id"].to_numpy(), written["target_period"].to_numpy(), kind=0
+    )
+    return Written(
+        accepted=len(fresh), unchanged=int(same.sum()) + checked.duplicates, revised=len(changed)
+    )
+
+
+def _write_children(connection: Connection, checked: Checked, row_to_id: pd.Series) -> None:
+    for table, frame in (
+        (schema.forecast_intervals, checked.intervals),
+        (schema.forecast_quantiles, checked.quantiles),
+    ):
+        mine = frame[frame["row"].isin(row_to_id.index)]
+        if mine.empty:
+            continue
+        child = mine.drop(columns="row").copy()
+        child.insert(0, "forecast_id", row_to_id.reindex(mine["row"]).to_numpy())
+        insert_frame(connection, table, child)
+
+
+def write_actuals(
+    connection: Connection, checked: Checked, series_ids: pd.Series, batch_id: int, now: int
+) -> Written:
+    """Insert new actuals, record revisions with their history, count identical ones."""
+    rows = checked.good.copy()
+    if rows.empty:
+        return Written(unchanged=checked.duplicates)
+    rows["series_id"] = series_ids.reindex(rows["series_key"]).to_numpy(dtype="int64")
+    rows["observed_at"] = rows["observed_at"].astype("int64")
+    staged = stage_keys(connection, "actual_keys", rows[["series_id", "period"]])
+    stored = read_frame(
+        connection,
+        f"SELECT a.series_id, a.period, a.value AS value_stored, a.observed_at AS observed_stored, "
+        f"a.revision FROM actuals a JOIN {staged} k ON a.series_id = k.series_id AND a.period = k.period",
+    )
+    merged = rows.merge(stored, how="left", on=["series_id", "period"])
+    is_new = merged["revision"].isna()
+    same = (
+        ~is_new
+        & (merged["value"] == merged["value_stored"])
+        & (merged["observed_at"] == merged["observed_stored"])
+    )
+    revised = merged[~is_new & ~same].copy()
+    fresh = merged[is_new].copy()
+    fresh["revision"] = 0
+    revised["revision"] = revised["revision"].astype("int64") + 1
+    if len(revised):
+        staged_rev = stage_keys(connection, "revised", revised[["series_id", "period"]])
+        connection.execute(
+            text(
+                f"DELETE FROM actuals WHERE EXISTS (SELECT 1 FROM {staged_rev} r WHERE "
+                "r.series_id = actuals.series_id AND r.period = actuals.period)"
+            )
+        )
+    written = pd.concat([fresh, revised])
+    written["revision"] = written["revision"].astype("int64")
+    written["updated_at"] = now
+    insert_frame(
+        connection,
+        schema.actuals,
+        written[["series_id", "period", "observed_at", "value", "revision", "updated_at"]],
+    )
+    history = written[["series_id", "period", "revision", "observed_at", "value"]].assign(
+        recorded_at=now, batch_id=batch_id
+    )
+    insert_frame(connection, schema.actual_history, history)
+    enqueue(connection, written["series_id"].to_numpy(), written["period"].to_numpy(), kind=1)
+    return Written(
+        accepted=len(fresh), unchanged=int(same.sum()) + checked.duplicates, revised=len(revised)
+    )

@@ -1,0 +1,139 @@
+"""Series metadata rows: frequency, season, time zone, unit and `label_<name>` columns.
+
+Labels (team, region, ...) are what alert routing and the views filter by. Frequency and time
+zone fix how periods are counted, so they cannot change once a series has forecasts or actuals
+(its stored periods would silently shift); such a row is rejected with that reason.
+"""
+
+from __future__ import annotations
+
+import json
+
+import pandas as pd
+from sqlalchemy import Connection, text
+
+from aftercast.config import SeriesDefaults
+from aftercast.ingest.load import Written
+from aftercast.ingest.validate import Checked, Reasons, _key, _package
+from aftercast.periods import check_frequency, check_timezone
+from aftercast.store import schema
+from aftercast.store.bulk import insert_frame, read_frame
+from aftercast.store.catalog import series_settings
+
+COLUMNS = ["series_id", "frequency", "season", "timezone", "unit"]
+
+
+def _check_values(values: pd.Series, check: object, reasons: Reasons, column: str) -> None:
+    for value in values.dropna().unique():  # distinct values, a handful per file
+        try:
+            check(value)  # type: ignore[operator]
+        except ValueError as exc:
+            reasons.flag(values == value, f"bad {column}: {exc}")
+
+
+def check(frame: pd.DataFrame, first_row: int) -> Checked:
+    frame = frame.reset_index(drop=True)
+    reasons = Reasons(frame.index)
+    key = _key(frame, "series_id", reasons)
+    good = pd.DataFrame({"key": key})
+    for column in ("frequency", "timezone", "unit"):
+        if column in frame.columns:
+            good[column] = frame[column].astype("string").str.strip().replace("", pd.NA)
+    if "frequency" in good:
+        _check_values(good["frequency"], check_frequency, reasons, "frequency")
+    if "timezone" in good:
+        _check_values(good["timezone"], check_timezone, reasons, "timezone")
+    if "season" in frame.columns:
+        raw = frame["season"].astype("string").str.strip().replace("", pd.NA)
+        season = pd.to_numeric(raw, errors="coerce")
+        reasons.flag(
+            raw.notna() & ~((season >= 1) & (season % 1 == 0)), "season is not a whole number >= 1"
+        )
+        good["season"] = season
+    labels = [c for c in frame.columns if str(c).startswith("label_")]
+    label_frame = frame[labels].astype("string") if labels else pd.DataFrame(index=frame.index)
+    label_frame.columns = [str(c).removeprefix("label_") for c in labels]
+    good["labels"] = (
+        [
+            json.dumps({k: v for k, v in row.items() if not pd.isna(v) and v != ""})
+            for row in label_frame.to_dict("records")
+        ]
+        if labels
+        else "{}"
+    )
+    dup = good["key"].duplicated(keep=False) & key.notna()
+    reasons.flag(dup, "series_id appears more than once in the file")
+    checked = _package(frame, reasons, first_row, good, 0)
+    checked.first_row = first_row
+    return checked
+
+
+def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDefaults) -> Written:
+    """Create new series and update stored ones; refuse period-changing edits to series with data."""
+    rows = checked.good.set_index("key")
+    if rows.empty:
+        return Written()
+    for column in ("frequency", "timezone", "unit", "season"):
+        if column not in rows:
+            rows[column] = pd.NA
+    stored = series_settings(connection, rows.index)
+    known = rows.index.intersection(stored.index)
+    merged = rows.copy()
+    for column in ("frequency", "timezone", "season", "unit"):
+        fallback = pd.Series(getattr(defaults, column, None), index=rows.index, dtype=object)
+        fallback.loc[known] = stored.loc[known, column]
+        merged[column] = rows[column].astype(object).where(rows[column].notna(), fallback)
+    merged["labels"] = rows["labels"]
+    _refuse_period_changes(connection, checked, merged.loc[known], stored.loc[known])
+    merged = merged.drop(index=merged.index.intersection(checked.rejected_keys))
+    new = merged.loc[merged.index.difference(stored.index)].reset_index(names="key")
+    insert_frame(connection, schema.series, new.assign(created_at=now, updated_at=now))
+    changed = merged.loc[merged.index.intersection(stored.index)]
+    params = [
+        {
+            "k": key,
+            "f": r["frequency"],
+            "z": r["timezone"],
+            "s": int(r["season"]),
+            "u": r["unit"],
+            "l": r["labels"],
+            "t": now,
+        }
+        for key, r in changed.astype(object).where(changed.notna(), None).iterrows()
+    ]
+    if params:
+        connection.execute(
+            text(
+                "UPDATE series SET frequency = :f, timezone = :z, season = :s, unit = :u, labels = :l, "
+                "updated_at = :t WHERE key = :k"
+            ),
+            params,
+        )
+    return Written(accepted=len(new), revised=len(changed))
+
+
+def _refuse_period_changes(
+    connection: Connection, checked: Checked, wanted: pd.DataFrame, stored: pd.DataFrame
+) -> None:
+    moved = (wanted["frequency"] != stored["frequency"]) | (
+        wanted["timezone"] != stored["timezone"]
+    )
+    if not moved.any():
+        return
+    ids = stored.loc[moved[moved].index, "id"].astype("int64")
+    with_data = read_frame(
+        connection,
+        "SELECT DISTINCT series_id FROM actuals UNION SELECT DISTINCT series_id FROM forecasts",
+    )
+    blocked = ids[ids.isin(with_data["series_id"])].index
+    if len(blocked):
+        numbers = checked.good.reset_index().set_index("key").loc[blocked]
+        extra = pd.DataFrame(
+            {
+                "row_number": numbers["index"].to_numpy() + checked.first_row,
+                "reason": "frequency or timezone cannot change once the series holds data",
+                "raw": [json.dumps({"series_id": k}) for k in blocked],
+            }
+        )
+        checked.rejected = pd.concat([checked.rejected, extra], ignore_index=True)
+        checked.rejected_keys = list(blocked)

@@ -1,0 +1,168 @@
+"""Matching: queued (series, period) keys -> scored pairs.
+
+Ingest queues every (series, target period) whose forecasts or actual changed. A cycle takes the
+queue in batches of series, joins stored forecasts to stored actuals on (series, period), so a
+forecast that arrives after its actual matches as well as one that arrived before, and scores
+each pair once with `measures`. A changed actual also feeds the seasonal naive scale of every
+pair issued after it, so those pairs are rescored too. Each batch is one transaction: its pairs
+are replaced and its queue rows removed together, so a crash repeats a batch, never half of one.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import Connection, Engine, text
+
+from aftercast import measures
+from aftercast.store import schema
+from aftercast.store.bulk import delete_by_ids, insert_frame, read_frame, stage_keys
+from aftercast.store.db import write
+
+PAIR_COLUMNS = [c.name for c in schema.pairs.columns]
+_CANDIDATE_COLUMNS = (
+    "f.id AS forecast_id, f.series_id, f.model_id, f.horizon, f.issued_at, f.target_at, "
+    "f.issue_period, f.target_period, f.point, a.value AS actual, a.revision AS actual_revision"
+)
+
+
+@dataclass
+class MatchStats:
+    queued: int = 0
+    pairs_scored: int = 0
+    touched: pd.DataFrame | None = None  # distinct (series_id, model_id) with new or changed pairs
+
+
+def _candidates(connection: Connection, queue: str) -> pd.DataFrame:
+    targeted = read_frame(
+        connection,
+        f"SELECT {_CANDIDATE_COLUMNS} FROM forecasts f "
+        f"JOIN (SELECT DISTINCT series_id, period FROM {queue}) q "
+        "ON f.series_id = q.series_id AND f.target_period = q.period "
+        "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period",
+    )
+    rescaled = read_frame(
+        connection,
+        f"SELECT {_CANDIDATE_COLUMNS} FROM pairs p "
+        f"JOIN (SELECT series_id, MIN(period) AS period FROM {queue} WHERE kind = 1 "
+        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period "
+        "JOIN forecasts f ON f.id = p.forecast_id "
+        "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period",
+    )
+    both = (
+        pd.concat([f for f in (targeted, rescaled) if not f.empty], ignore_index=True)
+        if (len(targeted) or len(rescaled))
+        else targeted
+    )
+    return both.drop_duplicates("forecast_id")
+
+
+def _bounds(connection: Connection, ids: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
+    staged = stage_keys(connection, "pair_ids", pd.DataFrame({"forecast_id": ids}))
+    intervals = read_frame(
+        connection,
+        f"SELECT i.forecast_id, i.level, i.lower, i.upper FROM forecast_intervals i "
+        f"JOIN {staged} s ON s.forecast_id = i.forecast_id",
+    )
+    quantiles = read_frame(
+        connection,
+        f"SELECT q.forecast_id, q.prob, q.value FROM forecast_quantiles q "
+        f"JOIN {staged} s ON s.forecast_id = q.forecast_id",
+    )
+    return intervals, quantiles
+
+
+def _scales(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
+    series_ids = pd.DataFrame({"series_id": pairs["series_id"].unique()})
+    staged = stage_keys(connection, "scale_series", series_ids)
+    history = read_frame(
+        connection,
+        f"SELECT a.series_id, a.period, a.value, s.season FROM actuals a "
+        f"JOIN {staged} k ON k.series_id = a.series_id JOIN series s ON s.id = a.series_id",
+    )
+    queries = pairs[["series_id", "issue_period"]].drop_duplicates()
+    return measures.seasonal_scales(history, queries)
+
+
+def score_pairs(candidates: pd.DataFrame, scales: pd.DataFrame, now: int) -> pd.DataFrame:
+    """Point measures for each candidate pair (pure: frames in, frame out)."""
+    pairs = candidates.merge(scales, on=["series_id", "issue_period"], how="left")
+    y = pairs["actual"].to_numpy(np.float64)
+    f = pairs["point"].to_numpy(np.float64)
+    error = measures.forecast_error(y, f)
+    pairs["error"] = error
+    pairs["abs_error"] = np.abs(error)
+    pairs["sq_error"] = error**2
+    pairs["ape"] = measures.absolute_percentage_error(y, f)
+    pairs["sape"] = measures.symmetric_absolute_percentage_error(y, f)
+    pairs["scaled_error"] = measures.scaled_error(error, pairs["scale_abs"].to_numpy())
+    pairs["scored_at"] = now
+    return pairs[PAIR_COLUMNS]
+
+
+def score_intervals(intervals: pd.DataFrame, actual: pd.Series) -> pd.DataFrame:
+    """Hit, width and interval score per (pair, level); `actual` is indexed by forecast_id."""
+    y = actual.reindex(intervals["forecast_id"]).to_numpy(np.float64)
+    lower = intervals["lower"].to_numpy(np.float64)
+    upper = intervals["upper"].to_numpy(np.float64)
+    level = intervals["level"].to_numpy(np.float64)
+    scored = intervals.copy()
+    scored["hit"] = measures.interval_hit(y, lower, upper).astype(np.int16)
+    scored["width"] = upper - lower
+    scored["interval_score"] = measures.interval_score(y, lower, upper, level)
+    return scored
+
+
+def score_quantiles(quantiles: pd.DataFrame, actual: pd.Series) -> pd.DataFrame:
+    y = actual.reindex(quantiles["forecast_id"]).to_numpy(np.float64)
+    scored = quantiles.copy()
+    scored["pinball"] = measures.pinball_loss(
+        y, quantiles["value"].to_numpy(np.float64), quantiles["prob"].to_numpy(np.float64) / 100.0
+    )
+    return scored
+
+
+def _match_batch(connection: Connection, queue: pd.DataFrame, now: int) -> tuple[pd.DataFrame, int]:
+    staged = stage_keys(connection, "match_batch", queue)
+    candidates = _candidates(connection, staged)
+    if not candidates.empty:
+        ids = candidates["forecast_id"].to_numpy()
+        intervals, quantiles = _bounds(connection, ids)
+        scored = score_pairs(candidates, _scales(connection, candidates), now)
+        actual = pd.Series(scored["actual"].to_numpy(), index=scored["forecast_id"].to_numpy())
+        delete_by_ids(connection, [schema.pairs, schema.pair_intervals, schema.pair_quantiles], ids)
+        insert_frame(connection, schema.pairs, scored)
+        insert_frame(connection, schema.pair_intervals, score_intervals(intervals, actual))
+        insert_frame(connection, schema.pair_quantiles, score_quantiles(quantiles, actual))
+    connection.execute(
+        text(
+            f"DELETE FROM match_queue WHERE EXISTS (SELECT 1 FROM {staged} b WHERE "
+            "b.series_id = match_queue.series_id AND b.period = match_queue.period "
+            "AND b.kind = match_queue.kind)"
+        )
+    )
+    return candidates[["series_id", "model_id"]].drop_duplicates(), len(candidates)
+
+
+def match(
+    engine: Engine, now: int, batch_rows: int = 50_000, series_ids: np.ndarray | None = None
+) -> MatchStats:
+    """Drain the match queue (optionally only for some series), scoring pairs batch by batch."""
+    with engine.connect() as connection:
+        queue = read_frame(connection, "SELECT series_id, period, kind FROM match_queue")
+    if series_ids is not None:
+        queue = queue[queue["series_id"].isin(series_ids)]
+    stats = MatchStats(queued=len(queue))
+    touched = []
+    sizes = queue.groupby("series_id").size()
+    batch_of = (sizes.cumsum() // batch_rows).rename("batch")
+    queue = queue.join(batch_of, on="series_id")
+    for _, batch in queue.groupby("batch", sort=True):
+        with write(engine) as connection:
+            keys, scored = _match_batch(connection, batch.drop(columns="batch"), now)
+        touched.append(keys)
+        stats.pairs_scored += scored
+    stats.touched = pd.concat(touched, ignore_index=True).drop_duplicates() if touched else None
+    return stats

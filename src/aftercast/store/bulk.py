@@ -1,0 +1,117 @@
+"""Bulk paths per dialect: inserting data frames, allocating ids, reading frames back.
+
+PostgreSQL gets COPY through psycopg 3 (the frame is written as CSV text by pandas, in C);
+SQLite gets executemany over plain tuples inside one IMMEDIATE transaction, which is the fastest
+path its driver has. Either way no Python code runs per row besides the driver's own.
+"""
+
+from __future__ import annotations
+
+import io
+from collections.abc import Iterable, Sequence
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import BigInteger, Column, Connection, MetaData, Table, text
+
+
+def is_postgres(connection: Connection) -> bool:
+    return connection.dialect.name == "postgresql"
+
+
+def _python_rows(frame: pd.DataFrame) -> Iterable[tuple[Any, ...]]:
+    """Rows as tuples of plain Python values, NaN and NA as None (what DB-API drivers bind)."""
+    clean = frame.astype(object).where(frame.notna(), None)
+    return clean.itertuples(index=False, name=None)
+
+
+def insert_frame(connection: Connection, table: Table, frame: pd.DataFrame) -> int:
+    """Insert every row of `frame` (columns named as the table's) into `table`."""
+    if frame.empty:
+        return 0
+    columns = list(frame.columns)
+    if is_postgres(connection):
+        _copy_postgres(connection, table.name, columns, frame)
+    else:
+        placeholders = ", ".join("?" for _ in columns)
+        sql = f"INSERT INTO {table.name} ({', '.join(columns)}) VALUES ({placeholders})"
+        raw = connection.connection.driver_connection
+        assert raw is not None
+        raw.executemany(sql, _python_rows(frame))
+    return len(frame)
+
+
+def _copy_postgres(
+    connection: Connection, name: str, columns: list[str], frame: pd.DataFrame
+) -> None:
+    buffer = io.StringIO()
+    frame.to_csv(buffer, index=False, header=False, na_rep="\\N", float_format="%.17g")
+    raw = connection.connection.driver_connection
+    assert raw is not None
+    with raw.cursor() as cursor:
+        sql = f"COPY {name} ({', '.join(columns)}) FROM STDIN WITH (FORMAT csv, NULL '\\N')"
+        with cursor.copy(sql) as copy:
+            copy.write(buffer.getvalue())
+
+
+def allocate_ids(connection: Connection, table: Table, count: int) -> np.ndarray:
+    """`count` fresh primary keys for `table`, safe against concurrent writers.
+
+    SQLite: the write transaction holds the database lock, so max(id) + 1 is ours. PostgreSQL:
+    the serial column's sequence hands out the block.
+    """
+    if count == 0:
+        return np.empty(0, dtype=np.int64)
+    if is_postgres(connection):
+        sql = text("SELECT nextval(pg_get_serial_sequence(:t, 'id')) FROM generate_series(1, :n)")
+        rows = connection.execute(sql, {"t": table.name, "n": count}).scalars().all()
+        return np.asarray(rows, dtype=np.int64)
+    start = connection.execute(text(f"SELECT COALESCE(MAX(id), 0) FROM {table.name}")).scalar_one()
+    return np.arange(start + 1, start + 1 + count, dtype=np.int64)
+
+
+def read_frame(
+    connection: Connection, sql: str, params: dict[str, Any] | None = None
+) -> pd.DataFrame:
+    """Run a SELECT and return its rows as a frame (column names from the query)."""
+    result = connection.execute(text(sql), params or {})
+    frame = pd.DataFrame(result.fetchall(), columns=list(result.keys()))
+    # A column of NULLs arrives as objects; as NaN floats it behaves like the numbers it stands for.
+    for column in frame.columns[frame.dtypes.map(pd.api.types.is_object_dtype)]:
+        if frame[column].isna().all():
+            frame[column] = frame[column].astype("float64")
+    return frame
+
+
+def stage_keys(connection: Connection, name: str, frame: pd.DataFrame) -> str:
+    """Load a small frame of integer keys into a temporary table for joins; returns its name.
+
+    Used where a query needs "rows matching these keys": a join against a temp table stays fast
+    where an IN list of thousands of tuples would not.
+    """
+    table = f"tmp_{name}"
+    columns = ", ".join(f"{c} BIGINT" for c in frame.columns)
+    if is_postgres(connection):
+        connection.execute(
+            text(f"CREATE TEMP TABLE IF NOT EXISTS {table} ({columns}) ON COMMIT DROP")
+        )
+    else:
+        connection.execute(text(f"CREATE TEMP TABLE IF NOT EXISTS {table} ({columns})"))
+    connection.execute(text(f"DELETE FROM {table}"))
+    temp = Table(table, MetaData(), *[Column(c, BigInteger) for c in frame.columns])
+    insert_frame(connection, temp, frame.astype("int64"))
+    return table
+
+
+def delete_by_ids(connection: Connection, tables: Sequence[Table], ids: np.ndarray) -> None:
+    """Delete rows whose forecast_id is in `ids` from each table (via a staged key table)."""
+    if len(ids) == 0:
+        return
+    staged = stage_keys(connection, "delete_ids", pd.DataFrame({"forecast_id": ids}))
+    for table in tables:
+        connection.execute(
+            text(
+                f"DELETE FROM {table.name} WHERE forecast_id IN (SELECT forecast_id FROM {staged})"
+            )
+        )

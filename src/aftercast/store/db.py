@@ -1,0 +1,112 @@
+"""Engines, transactions and schema migrations.
+
+SQLite runs in WAL mode so readers (the web pages) never block the cycle's writer, and write
+transactions start with BEGIN IMMEDIATE so two writers queue on the lock instead of failing
+half-way with "database is locked". PostgreSQL needs nothing special. The schema is managed by
+Alembic: `migrate` upgrades to head, `check_current` refuses to work on an old schema.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from alembic import command
+from alembic.config import Config as AlembicConfig
+from alembic.runtime.migration import MigrationContext
+from alembic.script import ScriptDirectory
+from sqlalchemy import Connection, Engine, create_engine, event
+from sqlalchemy.exc import ArgumentError, NoSuchModuleError, OperationalError
+
+from aftercast.errors import AftercastError, ConfigError, SchemaOutdatedError
+
+MIGRATIONS = Path(__file__).parent / "migrations"
+
+
+def make_engine(url: str, echo: bool = False) -> Engine:
+    """An engine for `url`; SQLite gets WAL, a busy timeout and IMMEDIATE write transactions."""
+    try:
+        if url.startswith("sqlite"):
+            engine = create_engine(url, echo=echo, connect_args={"timeout": 60})
+            _tune_sqlite(engine)
+        else:
+            engine = create_engine(url, echo=echo, pool_pre_ping=True)
+    except (ArgumentError, NoSuchModuleError) as exc:
+        raise ConfigError(f"config key store.url: {exc}") from None
+    return engine
+
+
+def _tune_sqlite(engine: Engine) -> None:
+    @event.listens_for(engine, "connect")
+    def _on_connect(dbapi_connection: Any, _record: Any) -> None:
+        # Let SQLAlchemy's "begin" event emit BEGIN itself (pysqlite's own handling is off).
+        dbapi_connection.isolation_level = None
+        cursor = dbapi_connection.cursor()
+        cursor.execute("PRAGMA journal_mode=WAL")
+        cursor.execute("PRAGMA synchronous=NORMAL")
+        cursor.execute("PRAGMA temp_store=MEMORY")
+        cursor.execute("PRAGMA cache_size=-131072")
+        cursor.close()
+
+    @event.listens_for(engine, "begin")
+    def _on_begin(connection: Connection) -> None:
+        statement = "BEGIN IMMEDIATE" if connection.info.get("write") else "BEGIN"
+        connection.exec_driver_sql(statement)
+
+
+@contextmanager
+def write(engine: Engine) -> Iterator[Connection]:
+    """A write transaction: committed on success, rolled back on any error."""
+    with engine.connect() as connection:
+        connection.info["write"] = True
+        try:
+            with connection.begin():
+                yield connection
+        finally:
+            connection.info["write"] = False
+
+
+def _alembic_config(connection: Connection) -> AlembicConfig:
+    config = AlembicConfig()
+    config.set_main_option("script_location", str(MIGRATIONS))
+    config.attributes["connection"] = connection
+    return config
+
+
+def migrate(engine: Engine) -> str:
+    """Create or upgrade the schema to the newest revision; returns that revision."""
+    try:
+        with write(engine) as connection:
+            config = _alembic_config(connection)
+            command.upgrade(config, "head")
+            return str(ScriptDirectory.from_config(config).get_current_head())
+    except OperationalError as exc:
+        raise AftercastError(f"store {engine.url!r}: cannot open ({exc.orig})") from None
+
+
+def schema_revisions(engine: Engine) -> tuple[str | None, str]:
+    """(revision the store is at, newest revision this version knows)."""
+    with engine.connect() as connection:
+        current = MigrationContext.configure(connection).get_current_revision()
+        head = ScriptDirectory.from_config(_alembic_config(connection)).get_current_head()
+    return current, str(head)
+
+
+def check_current(engine: Engine) -> None:
+    """Raise SchemaOutdatedError, with the fix, unless the store is at the newest revision."""
+    try:
+        current, head = schema_revisions(engine)
+    except OperationalError as exc:
+        raise AftercastError(f"store {engine.url!r}: cannot open ({exc.orig})") from None
+    if current is None:
+        raise SchemaOutdatedError(
+            f"store {engine.url.render_as_string(hide_password=True)} has no aftercast schema: "
+            "run `aftercast init` first"
+        )
+    if current != head:
+        raise SchemaOutdatedError(
+            f"store schema is at revision {current}, this aftercast needs {head}: "
+            "run `aftercast init` to migrate"
+        )

@@ -1,0 +1,78 @@
+"""Read queries used by status, exports and the web: pairs with their series and model names."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+
+import pandas as pd
+from sqlalchemy import Connection
+
+from aftercast.store.bulk import read_frame, stage_keys
+
+PAIR_SELECT = (
+    "SELECT p.forecast_id, s.key AS series_id, m.name AS model, p.horizon, p.issued_at, "
+    "p.target_at, p.target_period, p.actual, p.point, p.error, p.abs_error, p.sq_error, p.ape, "
+    "p.sape, p.scale_abs, p.scale_sq, p.scaled_error, p.actual_revision "
+    "FROM pairs p JOIN series s ON s.id = p.series_id JOIN models m ON m.id = p.model_id"
+)
+
+
+def pairs_upto(connection: Connection, now: int, since: int | None = None) -> pd.DataFrame:
+    """Pairs with since < target_at <= now (all up to now when since is None)."""
+    where = " WHERE p.target_at <= :now" + (
+        " AND p.target_at > :since" if since is not None else ""
+    )
+    return read_frame(connection, PAIR_SELECT + where, {"now": now, "since": since})
+
+
+def intervals_for(connection: Connection, forecast_ids: pd.Series) -> pd.DataFrame:
+    staged = stage_keys(connection, "window_ids", pd.DataFrame({"forecast_id": forecast_ids}))
+    return read_frame(
+        connection,
+        "SELECT i.forecast_id, i.level, i.lower, i.upper, i.hit, i.width, i.interval_score "
+        f"FROM pair_intervals i JOIN {staged} w ON w.forecast_id = i.forecast_id",
+    )
+
+
+def quantiles_for(connection: Connection, forecast_ids: pd.Series) -> pd.DataFrame:
+    staged = stage_keys(connection, "window_qids", pd.DataFrame({"forecast_id": forecast_ids}))
+    return read_frame(
+        connection,
+        "SELECT q.forecast_id, q.prob, q.value, q.pinball "
+        f"FROM pair_quantiles q JOIN {staged} w ON w.forecast_id = q.forecast_id",
+    )
+
+
+def iter_pair_export(connection: Connection, batch: int = 100_000) -> Iterator[pd.DataFrame]:
+    """All pairs with per-pair interval measures, in forecast-id order, a batch at a time."""
+    last = 0
+    while True:
+        frame = read_frame(
+            connection,
+            PAIR_SELECT + " WHERE p.forecast_id > :last ORDER BY p.forecast_id LIMIT :n",
+            {"last": last, "n": batch},
+        )
+        if frame.empty:
+            return
+        last = int(frame["forecast_id"].iloc[-1])
+        intervals = intervals_for(connection, frame["forecast_id"])
+        quantiles = quantiles_for(connection, frame["forecast_id"])
+        yield _widen(frame, intervals, quantiles)
+
+
+def _widen(frame: pd.DataFrame, intervals: pd.DataFrame, quantiles: pd.DataFrame) -> pd.DataFrame:
+    """One column per level and quantile measure (hit_80, width_80, interval_score_80, pinball_10)."""
+    from aftercast.windows import level_name
+
+    out = frame.set_index("forecast_id")
+    if not intervals.empty:
+        intervals = intervals.assign(level=intervals["level"].map(level_name))
+        for column in ("lower", "upper", "hit", "width", "interval_score"):
+            wide = intervals.pivot(index="forecast_id", columns="level", values=column)
+            out = out.join(wide.add_prefix(f"{column}_"))
+    if not quantiles.empty:
+        quantiles = quantiles.assign(prob=quantiles["prob"].map(level_name))
+        for column, prefix in (("value", "q_"), ("pinball", "pinball_")):
+            wide = quantiles.pivot(index="forecast_id", columns="prob", values=column)
+            out = out.join(wide.add_prefix(prefix))
+    return out.reset_index()
