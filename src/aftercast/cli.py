@@ -8,6 +8,7 @@ stage functions.
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import sys
 from collections.abc import Callable, Sequence
@@ -23,18 +24,11 @@ EXIT_UNREADABLE = 1
 Handler = Callable[[argparse.Namespace], int]
 
 
-def _add_ingest(commands: Any) -> None:
-    ingest = commands.add_parser("ingest", help="load forecasts, actuals or series from files")
-    ingest.add_argument("kind", choices=["forecasts", "actuals", "series"])
-    ingest.add_argument("paths", nargs="+", type=Path, metavar="PATH")
-    ingest.add_argument("--json", action="store_true", help="print counts as one JSON object")
-
-
-def _add_status(commands: Any) -> None:
-    status = commands.add_parser("status", help="window measures per series, model and horizon")
-    status.add_argument("--json", action="store_true", help="print a JSON array of rows")
-    status.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
-    status.add_argument("--window", help="named window (default: the first configured)")
+# Each module adds its own sub-commands with `register(commands)`, and handles them with the
+# function it sets as the parser default `handler`; a new command is one new module and one line.
+COMMAND_MODULES = (
+    "aftercast.commands.core",
+)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -42,34 +36,13 @@ def build_parser() -> argparse.ArgumentParser:
         prog="aftercast", description="Watch live forecasts against what actually happens."
     )
     parser.add_argument(
-        "--config", help="config file (default: $AFTERCAST_CONFIG, then ./config/aftercast.yaml)"
+        "--config",
+        help="config file (default: $AFTERCAST_CONFIG, then ./config/aftercast.yaml)",
     )
     parser.add_argument("--version", action="version", version=f"aftercast {__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND", required=True)
-
-    init = commands.add_parser("init", help="create or migrate the store")
-    init.add_argument(
-        "--write-config",
-        type=Path,
-        metavar="PATH",
-        help="write a commented starter config to PATH instead",
-    )
-    _add_ingest(commands)
-    cycle = commands.add_parser("cycle", help="one full monitoring pass")
-    cycle.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
-    cycle.add_argument("--json", action="store_true", help="print the cycle report as JSON")
-    _add_status(commands)
-    scores = commands.add_parser("scores", help="matched pairs with their per-pair measures")
-    scores_commands = scores.add_subparsers(dest="scores_command", required=True)
-    export = scores_commands.add_parser("export", help="write the pairs to a file")
-    export.add_argument("--format", choices=["csv", "jsonl"], default="csv")
-    export.add_argument("-o", "--output", type=Path, required=True, metavar="PATH")
-    demo = commands.add_parser("demo", help="the whole job end to end on an invented scenario")
-    demo.add_argument(
-        "--folder",
-        type=Path,
-        help="where to put the demo files (default: a new folder under ./demo-output)",
-    )
+    for name in COMMAND_MODULES:
+        importlib.import_module(name).register(commands)
     return parser
 
 
@@ -78,10 +51,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:  # argparse already printed one usage line
-        return int(exc.code or 0) and EXIT_USER_ERROR
-    from aftercast import commands
-
-    handler: Handler = getattr(commands, f"cmd_{args.command}")
+        return EXIT_USER_ERROR if exc.code else 0
+    handler: Handler = args.handler
     try:
         return handler(args)
     except AftercastError as exc:

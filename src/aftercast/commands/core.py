@@ -1,10 +1,13 @@
-"""Command handlers behind `cli.py`: load the config, open the store, call the stages."""
+"""Core commands: init, ingest, cycle, status, scores export, demo.
+
+Handlers are thin: load the config, open the store, call the stage functions.
+"""
 
 from __future__ import annotations
 
 import argparse
-import json
 import sys
+from typing import Any
 from importlib import resources
 from pathlib import Path
 
@@ -214,4 +217,37 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(args.folder)
 
 
-__all__ = ["cmd_init", "cmd_ingest", "cmd_cycle", "cmd_status", "cmd_scores", "cmd_demo", "json"]
+def register(commands: Any) -> None:
+    init = commands.add_parser("init", help="create or migrate the store")
+    init.add_argument("--write-config", type=Path, metavar="PATH",
+                      help="write a commented starter config to PATH instead")
+    init.set_defaults(handler=cmd_init)
+
+    ingest = commands.add_parser("ingest", help="load forecasts, actuals or series from files")
+    ingest.add_argument("kind", choices=["forecasts", "actuals", "series"])
+    ingest.add_argument("paths", nargs="+", type=Path, metavar="PATH")
+    ingest.add_argument("--json", action="store_true", help="print counts as one JSON object")
+    ingest.set_defaults(handler=cmd_ingest)
+
+    cycle = commands.add_parser("cycle", help="one full monitoring pass")
+    cycle.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
+    cycle.add_argument("--json", action="store_true", help="print the cycle report as JSON")
+    cycle.set_defaults(handler=cmd_cycle)
+
+    status = commands.add_parser("status", help="window measures per series, model and horizon")
+    status.add_argument("--json", action="store_true", help="print a JSON array of rows")
+    status.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
+    status.add_argument("--window", help="named window (default: the first configured)")
+    status.set_defaults(handler=cmd_status)
+
+    scores = commands.add_parser("scores", help="matched pairs with their per-pair measures")
+    scores_commands = scores.add_subparsers(dest="scores_command", required=True)
+    export = scores_commands.add_parser("export", help="write the pairs to a file")
+    export.add_argument("--format", choices=["csv", "jsonl"], default="csv")
+    export.add_argument("-o", "--output", type=Path, required=True, metavar="PATH")
+    export.set_defaults(handler=cmd_scores)
+
+    demo = commands.add_parser("demo", help="the whole job end to end on an invented scenario")
+    demo.add_argument("--folder", type=Path,
+                      help="where to put the demo files (default: a new folder under ./demo-output)")
+    demo.set_defaults(handler=cmd_demo)

@@ -80,18 +80,23 @@ def migrate(engine: Engine) -> str:
     try:
         with write(engine) as connection:
             config = _alembic_config(connection)
-            command.upgrade(config, "head")
-            return str(ScriptDirectory.from_config(config).get_current_head())
+            command.upgrade(config, "heads")
+            return ",".join(sorted(ScriptDirectory.from_config(config).get_heads()))
     except OperationalError as exc:
         raise AftercastError(f"store {engine.url!r}: cannot open ({exc.orig})") from None
 
 
 def schema_revisions(engine: Engine) -> tuple[str | None, str]:
-    """(revision the store is at, newest revision this version knows)."""
+    """(revisions the store is at, newest revisions this version knows), comma-joined.
+
+    Revisions may branch from a common parent (independent features add their own tables);
+    the store is current when it is at every head.
+    """
     with engine.connect() as connection:
-        current = MigrationContext.configure(connection).get_current_revision()
-        head = ScriptDirectory.from_config(_alembic_config(connection)).get_current_head()
-    return current, str(head)
+        heads_now = MigrationContext.configure(connection).get_current_heads()
+        heads = ScriptDirectory.from_config(_alembic_config(connection)).get_heads()
+    current = ",".join(sorted(heads_now)) if heads_now else None
+    return current, ",".join(sorted(heads))
 
 
 def check_current(engine: Engine) -> None:
