@@ -21,7 +21,7 @@ from aftercast.errors import AftercastError, InputFileError
 from aftercast.ingest import ingest_path
 from aftercast.periods import parse_instant
 from aftercast.report import status_json, window_status
-from aftercast.store.db import check_current, make_engine, migrate
+from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.store.queries import iter_pair_export
 
 
@@ -30,8 +30,14 @@ def _engine(config: Config) -> Engine:
 
 
 def open_store(config: Config) -> Engine:
-    """An engine on a store whose schema is current (else one line saying how to migrate)."""
+    """An engine on a store whose schema is current.
+
+    An empty store is created on first use, so a trial needs no separate `init`; a store at an
+    older revision is refused with one line saying how to migrate (migrating is a decision).
+    """
     engine = _engine(config)
+    if schema_revisions(engine)[0] is None:
+        migrate(engine)
     check_current(engine)
     return engine
 

@@ -101,6 +101,8 @@ def _csv_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
         )
         first = 1
         for frame in reader:
+            if frame.empty:
+                continue
             yield Chunk(frame, first)
             first += len(frame)
     except pd.errors.EmptyDataError:
