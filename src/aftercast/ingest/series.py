@@ -115,6 +115,9 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
 def _refuse_period_changes(
     connection: Connection, checked: Checked, wanted: pd.DataFrame, stored: pd.DataFrame
 ) -> None:
+    if wanted.empty:
+        return
+    stored = stored.reindex(wanted.index)
     moved = (wanted["frequency"] != stored["frequency"]) | (
         wanted["timezone"] != stored["timezone"]
     )
