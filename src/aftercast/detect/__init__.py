@@ -76,7 +76,8 @@ def as_rows(values: ArrayLike, name: str) -> tuple[FloatArray, tuple[int, ...]]:
     array = as_float(values, name)
     if array.ndim == 0:
         raise ValueError(f"{name} must have a time axis (at least 1-D)")
-    return array.reshape(-1, array.shape[-1]), array.shape[:-1]
+    keys = int(np.prod(array.shape[:-1]))  # not -1: reshape cannot infer it when T == 0
+    return array.reshape(keys, array.shape[-1]), array.shape[:-1]
 
 
 def compact_rows(rows: FloatArray) -> tuple[FloatArray, IntArray]:
@@ -87,5 +88,8 @@ def compact_rows(rows: FloatArray) -> tuple[FloatArray, IntArray]:
     the compacted rows and the number of observed values per row.
     """
     missing = np.isnan(rows)
+    count = (~missing).sum(axis=1).astype(np.int64)
+    if not missing.any():
+        return rows, count
     order = np.argsort(missing, axis=1, kind="stable")
-    return np.take_along_axis(rows, order, axis=1), (~missing).sum(axis=1).astype(np.int64)
+    return np.take_along_axis(rows, order, axis=1), count

@@ -180,7 +180,8 @@ def mean_shift_test(
     valid = (n_r >= 2) & (n_b >= 2) & (total > 0)
     with np.errstate(invalid="ignore", divide="ignore"):
         statistic = np.where(valid, (mean_r - mean_b) / np.sqrt(total), np.nan)
-    pvalue = _pvalue(statistic, np.full(statistic.shape, np.inf), alternative)  # normal
+    # Infinite df is the normal: two HAC variances of different windows have no pooled df.
+    pvalue = _pvalue(statistic, np.full(statistic.shape, np.inf), alternative)
     return StatTestResult(statistic.reshape(shape), pvalue.reshape(shape))
 
 
