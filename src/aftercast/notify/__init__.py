@@ -26,8 +26,8 @@ from aftercast.notify.base import (
     DeliveryOutcome,
     Notification,
 )
-from aftercast.notify.email import EmailChannel, EmailChannelConfig
 from aftercast.notify.files import FileChannel, FileChannelConfig
+from aftercast.notify.mail import EmailChannel, EmailChannelConfig
 from aftercast.notify.webhook import WebhookChannel, WebhookChannelConfig
 
 CHANNELS: dict[str, type[Channel]] = {

@@ -10,6 +10,7 @@ of the file channel; it carries no charts, to stay small.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import re
 from datetime import UTC, datetime
@@ -189,7 +190,7 @@ def render_event(n: Notification) -> dict[str, Any]:
         "route": n.route,
         "channel": n.channel,
         "summary": render_subject(n),
-        "alerts": [jsonable(a.__dict__) for a in n.alerts],
+        "alerts": [jsonable(dataclasses.asdict(a)) for a in n.alerts],
         "more": n.more,
         "dashboard_url": n.dashboard_url,
     }

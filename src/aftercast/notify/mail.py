@@ -5,7 +5,8 @@ the HTML and one PNG per chart, referenced by Content-ID. `Message-ID` and
 `X-Aftercast-Notification-Id` carry the idempotency key, so a retried message can be recognised
 as a repeat. SMTP replies are sorted the way RFC 5321 means them: 4xx and any network trouble
 (refused, reset, timed out) are worth retrying, 5xx is a permanent no. Security is "starttls"
-by default, so a password never crosses the network in clear unless the config says so.
+by default, so a password never crosses the network in clear unless the config says so. The
+module is called `mail`, not `email`, so that it can never shadow the standard library package.
 """
 
 from __future__ import annotations
@@ -172,6 +173,9 @@ def _reply(code: int, text: bytes | str) -> str:
 def _classify(exc: smtplib.SMTPException | OSError, cfg: EmailChannelConfig) -> DeliveryOutcome:
     """RFC 5321 reply classes: 4xx transient (retry), 5xx permanent (dead)."""
     where = f"{cfg.host}:{cfg.smtp_port}"
+    timed_out = isinstance(exc.__context__, TimeoutError)  # smtplib wraps read timeouts
+    if isinstance(exc, TimeoutError) or timed_out:
+        return DeliveryOutcome.retry(f"{where} did not answer within {cfg.timeout_seconds:g}s")
     if isinstance(exc, smtplib.SMTPRecipientsRefused):
         codes = [code for code, _ in exc.recipients.values()]
         replies = "; ".join(f"{r}: {_reply(c, t)}" for r, (c, t) in exc.recipients.items())
@@ -185,18 +189,12 @@ def _classify(exc: smtplib.SMTPException | OSError, cfg: EmailChannelConfig) -> 
         return DeliveryOutcome.retry(f"{where} answered {reply}")
     if isinstance(exc, smtplib.SMTPNotSupportedError):
         return DeliveryOutcome.dead(f"{where} does not support what the config asks: {exc}")
-    if isinstance(exc, smtplib.SMTPServerDisconnected) and isinstance(
-        exc.__context__, TimeoutError
-    ):
-        exc = exc.__context__  # smtplib reports a read timeout as a disconnection
-    elif isinstance(exc, smtplib.SMTPServerDisconnected):
+    if isinstance(exc, smtplib.SMTPServerDisconnected):
         return DeliveryOutcome.retry(f"{where} closed the connection: {exc}")
     if isinstance(exc, ssl.SSLCertVerificationError):
         return DeliveryOutcome.dead(
             f"TLS certificate of {where} not trusted ({exc.verify_message}); set ca_file"
         )
-    if isinstance(exc, TimeoutError):
-        return DeliveryOutcome.retry(f"{where} did not answer within {cfg.timeout_seconds:g}s")
     if isinstance(exc, ConnectionRefusedError):
         return DeliveryOutcome.retry(f"connection refused by {where}: is the SMTP server up?")
     return DeliveryOutcome.retry(f"cannot talk to {where}: {type(exc).__name__}: {exc}")
