@@ -24,7 +24,9 @@ def workdir(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
     return tmp_path
 
 
-def test_ingest_json_counts_and_exit_codes(workdir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_ingest_json_counts_and_exit_codes(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     assert main(["init"]) == 0
     good = write_csv(workdir / "a.csv", "series_id,observed_at,value", "s,2026-01-01,1", "s,bad,2")
     capsys.readouterr()
@@ -38,7 +40,9 @@ def test_ingest_json_counts_and_exit_codes(workdir: Path, capsys: pytest.Capture
     assert err == [f"aftercast: error: {missing}: no such file"]
 
 
-def test_unknown_config_key_names_the_key(workdir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_unknown_config_key_names_the_key(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     path = workdir / "c.yaml"
     path.write_text("store:\n  url: sqlite:///x.db\nwindow:\n  dayz: 3\n")
     assert main(["--config", str(path), "init"]) == 2
@@ -47,7 +51,9 @@ def test_unknown_config_key_names_the_key(workdir: Path, capsys: pytest.CaptureF
     assert "window.dayz: unknown key" in err and str(path) in err
 
 
-def test_bad_config_value_and_missing_env(workdir: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> None:
+def test_bad_config_value_and_missing_env(
+    workdir: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
     path = workdir / "c.yaml"
     path.write_text("series_defaults:\n  timezone: Mars/Olympus\n")
     assert main(["--config", str(path), "init"]) == 2
@@ -59,7 +65,9 @@ def test_bad_config_value_and_missing_env(workdir: Path, capsys: pytest.CaptureF
     assert "store.url" in err and "AFTERCAST_TEST_UNSET_VAR" in err
 
 
-def test_config_from_environment_variable(workdir: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> None:
+def test_config_from_environment_variable(
+    workdir: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
     path = workdir / "elsewhere.yaml"
     path.write_text(f"store:\n  url: sqlite:///{workdir / 'env.db'}\n")
     monkeypatch.setenv("AFTERCAST_CONFIG", str(path))
@@ -67,7 +75,9 @@ def test_config_from_environment_variable(workdir: Path, capsys: pytest.CaptureF
     assert (workdir / "env.db").exists()
 
 
-def test_outdated_store_is_refused_with_the_fix(workdir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_outdated_store_is_refused_with_the_fix(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     from sqlalchemy import create_engine, text
 
     assert main(["status", "--json"]) == 0  # an empty store is created on first use
@@ -79,7 +89,9 @@ def test_outdated_store_is_refused_with_the_fix(workdir: Path, capsys: pytest.Ca
     assert "run `aftercast init` to migrate" in capsys.readouterr().err
 
 
-def test_write_config_is_valid_and_commented(workdir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_write_config_is_valid_and_commented(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     target = workdir / "config" / "aftercast.yaml"
     assert main(["init", "--write-config", str(target)]) == 0
     text = target.read_text()
@@ -88,18 +100,26 @@ def test_write_config_is_valid_and_commented(workdir: Path, capsys: pytest.Captu
     assert main(["init", "--write-config", str(target)]) == 2  # never overwrites
 
 
-def test_bad_now_and_bad_flag_are_one_line(workdir: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_bad_now_and_bad_flag_are_one_line(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     main(["init"])
     capsys.readouterr()
     assert main(["cycle", "--now", "not-a-time"]) == 2
-    assert capsys.readouterr().err.strip() == "aftercast: error: --now 'not-a-time' is not an ISO 8601 time"
+    assert (
+        capsys.readouterr().err.strip()
+        == "aftercast: error: --now 'not-a-time' is not an ISO 8601 time"
+    )
     assert main(["status", "--bogus"]) == 2
 
 
 def test_python_dash_m_runs_without_traceback(workdir: Path) -> None:
     result = subprocess.run(
         [sys.executable, "-m", "aftercast", "ingest", "forecasts", "missing.csv"],
-        capture_output=True, text=True, cwd=workdir, check=False,
+        capture_output=True,
+        text=True,
+        cwd=workdir,
+        check=False,
     )
     assert result.returncode != 0
     assert "Traceback" not in result.stderr

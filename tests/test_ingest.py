@@ -81,7 +81,9 @@ def test_bad_rows_are_rejected_with_reasons_and_good_rows_kept(
     assert json.loads(rows[1][2])["issued_at"] == "yesterday"
 
 
-def test_level_outside_range_and_horizon_disagreement(engine: Engine, config: Config, tmp_path: Path) -> None:
+def test_level_outside_range_and_horizon_disagreement(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
     path = write_csv(
         tmp_path / "f.csv",
         "series_id,model,issued_at,target_at,point,lower_120,upper_120,horizon",
@@ -100,8 +102,18 @@ def test_level_outside_range_and_horizon_disagreement(engine: Engine, config: Co
     [
         ("f.txt", b"series_id\n", "unknown file type"),
         ("f.csv", b"", "the file is empty"),
-        ("f.csv", b"series_id,model,issued_at,point\ns,m,2026-01-01,1\n", "missing required column target_at"),
-        ("f.csv", "series_id,model,issued_at,target_at,point\ns\xe9,m,2026-01-01,2026-01-02,1\n".encode("latin-1"), "not UTF-8"),
+        (
+            "f.csv",
+            b"series_id,model,issued_at,point\ns,m,2026-01-01,1\n",
+            "missing required column target_at",
+        ),
+        (
+            "f.csv",
+            "series_id,model,issued_at,target_at,point\ns\xe9,m,2026-01-01,2026-01-02,1\n".encode(
+                "latin-1"
+            ),
+            "not UTF-8",
+        ),
         ("f.csv", b"series_id,model,issued_at,target_at,point\n", "no rows"),
         ("f.parquet", b"not parquet at all", "not a readable Parquet file"),
     ],
@@ -129,7 +141,9 @@ def _example_files(tmp_path: Path) -> tuple[Path, Path]:
         ],
     )
     actuals = write_csv(
-        tmp_path / "a.csv", ACTUAL_HEADER, *[f"s1,2026-01-{d:02d},{10 + (d % 7)}" for d in range(1, 17)]
+        tmp_path / "a.csv",
+        ACTUAL_HEADER,
+        *[f"s1,2026-01-{d:02d},{10 + (d % 7)}" for d in range(1, 17)],
     )
     return forecasts, actuals
 
@@ -140,7 +154,10 @@ PAIR_TABLES = ["forecasts", "forecast_intervals", "actuals", "pairs", "pair_inte
 def _pairs_without_times(engine: Engine) -> list[tuple[object, ...]]:
     with engine.connect() as connection:
         rows = connection.execute(
-            text("SELECT forecast_id, actual, point, error, scale_abs FROM pairs ORDER BY forecast_id")
+            text(
+                "SELECT forecast_id, actual, point, error, scale_abs FROM pairs "
+                "ORDER BY forecast_id"
+            )
         ).all()
     return [tuple(r) for r in rows]
 
@@ -161,7 +178,9 @@ def test_ingest_twice_changes_nothing(engine: Engine, config: Config, tmp_path: 
     assert _pairs_without_times(engine) == pairs_before
 
 
-def test_both_arrival_orders_give_the_same_pairs(config: Config, tmp_path: Path, engine: Engine) -> None:
+def test_both_arrival_orders_give_the_same_pairs(
+    config: Config, tmp_path: Path, engine: Engine
+) -> None:
     forecasts, actuals = _example_files(tmp_path)
     ingest_path(engine, config, "actuals", actuals)
     run_cycle(engine, config, parse_instant("2026-01-20"))
@@ -173,8 +192,16 @@ def test_both_arrival_orders_give_the_same_pairs(config: Config, tmp_path: Path,
     other_dir = tmp_path / "other"
     other_dir.mkdir()
     with engine.begin() as connection:
-        for table in ("pairs", "pair_intervals", "pair_quantiles", "forecasts", "forecast_intervals",
-                      "actuals", "actual_history", "match_queue"):
+        for table in (
+            "pairs",
+            "pair_intervals",
+            "pair_quantiles",
+            "forecasts",
+            "forecast_intervals",
+            "actuals",
+            "actual_history",
+            "match_queue",
+        ):
             connection.execute(text(f"DELETE FROM {table}"))
     ingest_path(engine, config, "forecasts", forecasts)
     run_cycle(engine, config, parse_instant("2026-01-20"))
@@ -184,7 +211,9 @@ def test_both_arrival_orders_give_the_same_pairs(config: Config, tmp_path: Path,
     assert [r[1:] for r in early] == [r[1:] for r in late]
 
 
-def test_revised_actual_wins_keeps_history_and_rescores(engine: Engine, config: Config, tmp_path: Path) -> None:
+def test_revised_actual_wins_keeps_history_and_rescores(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
     forecasts, actuals = _example_files(tmp_path)
     ingest_path(engine, config, "forecasts", forecasts)
     ingest_path(engine, config, "actuals", actuals)
@@ -195,8 +224,10 @@ def test_revised_actual_wins_keeps_history_and_rescores(engine: Engine, config: 
     run_cycle(engine, config, parse_instant("2026-01-20"))
     with engine.connect() as connection:
         history = connection.execute(
-            text("SELECT value, revision FROM actual_history h JOIN series s ON s.id = h.series_id "
-                 "WHERE s.key = 's1' ORDER BY revision")
+            text(
+                "SELECT value, revision FROM actual_history h JOIN series s ON s.id = h.series_id "
+                "WHERE s.key = 's1' ORDER BY revision"
+            )
         ).all()
         used = connection.execute(
             text("SELECT actual, error, point, actual_revision FROM pairs WHERE target_at = :t"),
@@ -213,13 +244,17 @@ def test_revised_actual_wins_keeps_history_and_rescores(engine: Engine, config: 
 def _pairs_as_values(engine: Engine) -> list[tuple[object, ...]]:
     with engine.connect() as connection:
         rows = connection.execute(
-            text("SELECT issued_at, target_at, actual, error, scale_abs, scaled_error FROM pairs "
-                 "ORDER BY issued_at, target_at")
+            text(
+                "SELECT issued_at, target_at, actual, error, scale_abs, scaled_error FROM pairs "
+                "ORDER BY issued_at, target_at"
+            )
         ).all()
     return [tuple(round(v, 9) if isinstance(v, float) else v for v in r) for r in rows]
 
 
-def _fresh_store_pairs(tmp_path: Path, config: Config, files: list[Path]) -> list[tuple[object, ...]]:
+def _fresh_store_pairs(
+    tmp_path: Path, config: Config, files: list[Path]
+) -> list[tuple[object, ...]]:
     from aftercast.store.db import make_engine, migrate
 
     fresh = make_engine(f"sqlite:///{tmp_path / 'fresh.db'}")
@@ -232,30 +267,42 @@ def _fresh_store_pairs(tmp_path: Path, config: Config, files: list[Path]) -> lis
 
 
 def test_naive_times_use_the_series_time_zone(tmp_path: Path, sqlite_url: str) -> None:
-    from tests.conftest import make_config
     from aftercast.store.db import make_engine, migrate
+    from tests.conftest import make_config
 
     config = make_config(sqlite_url, series=[{"id": "berlin", "timezone": "Europe/Berlin"}])
     engine = make_engine(sqlite_url)
     migrate(engine)
-    path = write_csv(tmp_path / "a.csv", ACTUAL_HEADER, "berlin,2026-07-01T00:30,5", "utc,2026-07-01T00:30,5")
+    path = write_csv(
+        tmp_path / "a.csv", ACTUAL_HEADER, "berlin,2026-07-01T00:30,5", "utc,2026-07-01T00:30,5"
+    )
     ingest_path(engine, config, "actuals", path)
     with engine.connect() as connection:
-        rows = dict(connection.execute(
-            text("SELECT s.key, a.observed_at FROM actuals a JOIN series s ON s.id = a.series_id")
-        ).all())
+        rows = dict(
+            connection.execute(
+                text(
+                    "SELECT s.key, a.observed_at FROM actuals a JOIN series s ON s.id = a.series_id"
+                )
+            ).all()
+        )
     # Berlin is UTC+2 in July: local 00:30 is 22:30 UTC the day before.
     assert rows["berlin"] == parse_instant("2026-06-30T22:30Z")
     assert rows["utc"] == parse_instant("2026-07-01T00:30Z")
 
 
 def test_parquet_and_jsonl_read_like_csv(engine: Engine, config: Config, tmp_path: Path) -> None:
-    frame = pd.DataFrame({
-        "series_id": ["p1", "p1"], "observed_at": ["2026-01-01", "2026-01-02"], "value": [1.0, 2.0],
-    })
+    frame = pd.DataFrame(
+        {
+            "series_id": ["p1", "p1"],
+            "observed_at": ["2026-01-01", "2026-01-02"],
+            "value": [1.0, 2.0],
+        }
+    )
     frame.to_parquet(tmp_path / "a.parquet")
     frame.assign(series_id="j1").to_json(tmp_path / "a.jsonl", orient="records", lines=True)
-    (tmp_path / "bad.jsonl").write_text('{"series_id": "j2", "observed_at": "2026-01-01", "value": 3}\n{oops\n')
+    (tmp_path / "bad.jsonl").write_text(
+        '{"series_id": "j2", "observed_at": "2026-01-01", "value": 3}\n{oops\n'
+    )
     assert ingest_path(engine, config, "actuals", tmp_path / "a.parquet").accepted == 2
     assert ingest_path(engine, config, "actuals", tmp_path / "a.jsonl").accepted == 2
     bad = ingest_path(engine, config, "actuals", tmp_path / "bad.jsonl")

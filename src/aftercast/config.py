@@ -145,11 +145,16 @@ def substitute_env(value: Any, path: str = "") -> Any:
     return value
 
 
+_SECRET_KEY = re.compile(r"password|secret|token|headers", re.IGNORECASE)
+
+
 def _describe(error: dict[str, Any]) -> str:
     location = ".".join(str(part) for part in error["loc"]) or "(top level)"
     if error["type"] == "extra_forbidden":
         return f"config key {location}: unknown key"
     message = error["msg"].removeprefix("Value error, ")
+    if _SECRET_KEY.search(location) or isinstance(error.get("input"), dict | list):
+        return f"config key {location}: {message}"  # never echo a secret or a whole section
     return f"config key {location}: {message} (got {error.get('input')!r})"
 
 

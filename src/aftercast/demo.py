@@ -55,9 +55,18 @@ def demo_config_text(paths: DemoPaths) -> str:
 
 
 def _scenario_spec() -> ScenarioSpec:
-    degraded = pick_degraded(N_SERIES, 3, ("coverage_collapse", "level_shift"), DEGRADE_FROM, seed=3)
-    return ScenarioSpec(n_series=N_SERIES, days=DAYS, horizons=7, start="2026-06-01",
-                        degraded=degraded, seed=11, history_days=28)
+    degraded = pick_degraded(
+        N_SERIES, 3, ("coverage_collapse", "level_shift"), DEGRADE_FROM, seed=3
+    )
+    return ScenarioSpec(
+        n_series=N_SERIES,
+        days=DAYS,
+        horizons=7,
+        start="2026-06-01",
+        degraded=degraded,
+        seed=11,
+        history_days=28,
+    )
 
 
 def _replay_feed(console: Console, config: Config, files: object, spec: ScenarioSpec) -> None:
@@ -85,19 +94,27 @@ def run_demo(folder: Path | None = None) -> int:
     config = parse_config(__import__("yaml").safe_load(paths.config.read_text()), str(paths.config))
     spec = _scenario_spec()
     console.rule("[bold]aftercast demo: Marrow Hill Bakeries (an invented bakery chain)")
-    console.print(f"{spec.n_series} series (daily loaves per shop and bread), models "
-                  f"{', '.join(spec.models)}, {spec.days} days, horizons 1-{spec.horizons}.")
-    console.print("Degraded on purpose from day "
-                  f"{DEGRADE_FROM}: " + ", ".join(f"{k} ({v[0]})" for k, v in spec.degraded.items()))
+    console.print(
+        f"{spec.n_series} series (daily loaves per shop and bread), models "
+        f"{', '.join(spec.models)}, {spec.days} days, horizons 1-{spec.horizons}."
+    )
+    console.print(
+        "Degraded on purpose from day "
+        f"{DEGRADE_FROM}: " + ", ".join(f"{k} ({v[0]})" for k, v in spec.degraded.items())
+    )
     scenario = generate(spec)
     files = write(scenario, paths.inputs, "csv", split_by_day=True)
     engine = make_engine(config.store.url)
     migrate(engine)
     series_report = ingest_path(engine, config, "series", files.series)
     console.print(f"series metadata: {series_report.accepted} series with team and region labels")
-    console.print("[bold]Replaying the daily feed[/] (ingest actuals and forecasts, then one cycle):")
+    console.print(
+        "[bold]Replaying the daily feed[/] (ingest actuals and forecasts, then one cycle):"
+    )
     _replay_feed(console, config, files, spec)
-    now = parse_instant(f"{(pd.Timestamp(spec.start) + pd.Timedelta(days=spec.days - 1)).date()}T23:00:00Z")
+    now = parse_instant(
+        f"{(pd.Timestamp(spec.start) + pd.Timedelta(days=spec.days - 1)).date()}T23:00:00Z"
+    )
     rows = window_status(engine, config.window, now)
     records = [r for r in status_json(rows) if r["horizon"] == "all"]
     records.sort(key=lambda r: -(r["mase"] or 0))

@@ -41,7 +41,8 @@ def enqueue(connection: Connection, series_id: np.ndarray, period: np.ndarray, k
     staged = stage_keys(connection, "queue", keys)
     connection.execute(
         text(
-            f"INSERT INTO match_queue (series_id, period, kind) SELECT t.series_id, t.period, t.kind "
+            "INSERT INTO match_queue (series_id, period, kind) "
+            f"SELECT t.series_id, t.period, t.kind "
             f"FROM {staged} t WHERE NOT EXISTS (SELECT 1 FROM match_queue q WHERE "
             "q.series_id = t.series_id AND q.period = t.period AND q.kind = t.kind)"
         )
@@ -168,7 +169,8 @@ def write_actuals(
     stored = read_frame(
         connection,
         f"SELECT a.series_id, a.period, a.value AS value_stored, a.observed_at AS observed_stored, "
-        f"a.revision FROM actuals a JOIN {staged} k ON a.series_id = k.series_id AND a.period = k.period",
+        f"a.revision FROM actuals a JOIN {staged} k "
+        "ON a.series_id = k.series_id AND a.period = k.period",
     )
     merged = rows.merge(stored, how="left", on=["series_id", "period"])
     is_new = merged["revision"].isna()

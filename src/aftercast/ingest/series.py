@@ -69,7 +69,7 @@ def check(frame: pd.DataFrame, first_row: int) -> Checked:
 
 
 def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDefaults) -> Written:
-    """Create new series and update stored ones; refuse period-changing edits to series with data."""
+    """Create new series and update stored ones; refuse period-changing edits once data exists."""
     rows = checked.good.set_index("key")
     if rows.empty:
         return Written()
@@ -104,7 +104,8 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
     if params:
         connection.execute(
             text(
-                "UPDATE series SET frequency = :f, timezone = :z, season = :s, unit = :u, labels = :l, "
+                "UPDATE series SET frequency = :f, timezone = :z, season = :s, unit = :u, "
+                "labels = :l, "
                 "updated_at = :t WHERE key = :k"
             ),
             params,

@@ -219,7 +219,7 @@ def _bounds(
 
 
 def check_forecasts(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame) -> Checked:
-    """Validate a chunk of forecast rows. `settings` is indexed by series key (frequency, timezone)."""
+    """Validate a chunk of forecast rows; `settings` (frequency, timezone) is indexed by key."""
     frame = frame.reset_index(drop=True)
     reasons = Reasons(frame.index)
     if "__unparseable__" in frame.columns:

@@ -22,7 +22,7 @@ SETTINGS = ["frequency", "season", "timezone", "unit"]
 
 
 def series_settings(connection: Connection, keys: Iterable[str]) -> pd.DataFrame:
-    """Frame indexed by series key with id, frequency, season, timezone, unit, labels (stored ones)."""
+    """Stored series as a frame indexed by key: id, frequency, season, timezone, unit, labels."""
     wanted = sorted(set(keys))
     if not wanted:
         return pd.DataFrame(columns=["id", *SETTINGS, "labels"]).rename_axis("key")
@@ -81,15 +81,14 @@ def ensure_models(connection: Connection, names: Iterable[str]) -> dict[str, int
     """Ids of the named models, creating those not yet stored."""
     wanted = sorted(set(names))
     table = schema.models
-    known = dict(
-        connection.execute(select(table.c.name, table.c.id).where(table.c.name.in_(wanted))).all()
-    )
+    query = select(table.c.name, table.c.id).where(table.c.name.in_(wanted))
+    known: dict[str, int] = {str(name): int(id_) for name, id_ in connection.execute(query)}
     missing = [n for n in wanted if n not in known]
     if missing:
         insert_frame(connection, table, pd.DataFrame({"name": missing}))
-        rows = connection.execute(select(table.c.name, table.c.id).where(table.c.name.in_(missing)))
-        known.update(dict(rows.all()))
-    return {str(k): int(v) for k, v in known.items()}
+        query = select(table.c.name, table.c.id).where(table.c.name.in_(missing))
+        known.update({str(name): int(id_) for name, id_ in connection.execute(query)})
+    return known
 
 
 def all_series(connection: Connection) -> pd.DataFrame:

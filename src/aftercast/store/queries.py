@@ -61,7 +61,7 @@ def iter_pair_export(connection: Connection, batch: int = 100_000) -> Iterator[p
 
 
 def _widen(frame: pd.DataFrame, intervals: pd.DataFrame, quantiles: pd.DataFrame) -> pd.DataFrame:
-    """One column per level and quantile measure (hit_80, width_80, interval_score_80, pinball_10)."""
+    """One column per level and quantile measure: hit_80, width_80, interval_score_80, ..."""
     from aftercast.windows import level_name
 
     out = frame.set_index("forecast_id")

@@ -1,0 +1,93 @@
+"""Benchmark: first load and first cycle through the store, against the plain pandas script.
+
+Loads the files written by `bench/make_data.py` (1,000 series x 90 issue days x 14 horizons =
+1.26 million forecast rows with 80% and 95% intervals and three quantiles) into a fresh store,
+runs the first cycle (matching and scoring every pair), and runs `bench/pandas_baseline.py` on the
+same files in a separate process. Prints one JSON line: both times, their ratio, rows per second
+and peak memory of each process. Target (issue "Core data path"): ratio at most 2, peak memory
+under 2 GB. Store: a fresh SQLite file by default, or `--store-url` (e.g. PostgreSQL).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+from aftercast.config import parse_config
+from aftercast.cycle import run_cycle
+from aftercast.ingest import ingest_path
+from aftercast.store.db import make_engine, migrate
+
+HERE = Path(__file__).resolve().parent
+
+
+def peak_rss_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def run_store(data: Path, fmt: str, url: str) -> dict[str, float]:
+    config = parse_config({"store": {"url": url}}, "bench")
+    engine = make_engine(url)
+    migrate(engine)
+    timings: dict[str, float] = {}
+    start = time.perf_counter()
+    ingest_path(engine, config, "series", data / fmt / f"series.{fmt}")
+    report = ingest_path(engine, config, "forecasts", data / fmt / f"forecasts.{fmt}")
+    timings["ingest_forecasts_seconds"] = time.perf_counter() - start
+    mark = time.perf_counter()
+    ingest_path(engine, config, "actuals", data / fmt / f"actuals.{fmt}")
+    timings["ingest_actuals_seconds"] = time.perf_counter() - mark
+    mark = time.perf_counter()
+    cycle = run_cycle(engine, config)
+    timings["first_cycle_seconds"] = time.perf_counter() - mark
+    timings["seconds"] = time.perf_counter() - start
+    timings["forecast_rows"] = report.accepted
+    timings["pairs"] = cycle.pairs_scored
+    return timings
+
+
+def run_baseline(data: Path, fmt: str) -> dict[str, float]:
+    result = subprocess.run(
+        [sys.executable, str(HERE / "pandas_baseline.py"), "--data", str(data), "--format", fmt],
+        capture_output=True, text=True, check=True,
+    )
+    return dict(json.loads(result.stdout.strip().splitlines()[-1]))
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--data", type=Path, default=Path("bench/out/data"))
+    parser.add_argument("--format", choices=("csv", "parquet"), default="csv")
+    parser.add_argument("--store-url", help="store URL (default: a fresh SQLite file)")
+    args = parser.parse_args(argv)
+    if not (args.data / args.format).is_dir():
+        print(f"bench_ingest: {args.data / args.format} missing: run bench/make_data.py first",
+              file=sys.stderr)
+        return 2
+    with tempfile.TemporaryDirectory() as folder:
+        url = args.store_url or f"sqlite:///{Path(folder) / 'bench.db'}"
+        store = run_store(args.data, args.format, url)
+    baseline = run_baseline(args.data, args.format)
+    result = {
+        "bench": "ingest_and_first_cycle",
+        "store": url.split(":", 1)[0],
+        "format": args.format,
+        **{k: round(v, 3) for k, v in store.items()},
+        "rows_per_second": round(store["forecast_rows"] / store["seconds"]),
+        "peak_rss_mb": round(peak_rss_mb(), 1),
+        "pandas_seconds": baseline["seconds"],
+        "pandas_peak_rss_mb": baseline["peak_rss_mb"],
+        "ratio": round(store["seconds"] / baseline["seconds"], 2),
+    }
+    print(json.dumps(result))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
