@@ -83,7 +83,8 @@ def test_outdated_store_is_refused_with_the_fix(
     assert main(["status", "--json"]) == 0  # an empty store is created on first use
     engine = create_engine(f"sqlite:///{workdir / 'aftercast.db'}")
     with engine.begin() as connection:
-        connection.execute(text("UPDATE alembic_version SET version_num = 'older'"))
+        connection.execute(text("DELETE FROM alembic_version"))
+        connection.execute(text("INSERT INTO alembic_version VALUES ('0001')"))
     capsys.readouterr()
     assert main(["status"]) == 2
     assert "run `aftercast init` to migrate" in capsys.readouterr().err

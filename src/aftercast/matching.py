@@ -138,9 +138,9 @@ def _match_batch(connection: Connection, queue: pd.DataFrame, now: int) -> tuple
         insert_frame(connection, schema.pair_quantiles, score_quantiles(quantiles, actual))
     connection.execute(
         text(
-            f"DELETE FROM match_queue WHERE EXISTS (SELECT 1 FROM {staged} b WHERE "
-            "b.series_id = match_queue.series_id AND b.period = match_queue.period "
-            "AND b.kind = match_queue.kind)"
+            # Row-value IN lets both engines hash the staged keys instead of a nested scan.
+            "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
+            f"(SELECT series_id, period, kind FROM {staged})"
         )
     )
     return candidates[["series_id", "model_id"]].drop_duplicates(), len(candidates)

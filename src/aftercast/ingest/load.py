@@ -59,7 +59,7 @@ def _existing_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFr
         "AND f.issued_at = k.issued_at AND f.target_at = k.target_at",
     )
     if found.empty:
-        return found.assign(_bounds=pd.Series(dtype=str))
+        return found.assign(_bounds=pd.Series(dtype=np.uint64))
     staged_ids = stage_keys(
         connection, "found_ids", found[["id"]].rename(columns={"id": "forecast_id"})
     )
@@ -187,8 +187,8 @@ def write_actuals(
         staged_rev = stage_keys(connection, "revised", revised[["series_id", "period"]])
         connection.execute(
             text(
-                f"DELETE FROM actuals WHERE EXISTS (SELECT 1 FROM {staged_rev} r WHERE "
-                "r.series_id = actuals.series_id AND r.period = actuals.period)"
+                "DELETE FROM actuals WHERE (series_id, period) IN "
+                f"(SELECT series_id, period FROM {staged_rev})"
             )
         )
     written = pd.concat([fresh, revised])

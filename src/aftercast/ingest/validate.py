@@ -286,20 +286,44 @@ def check_forecasts(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame)
 
 
 def bound_signature(intervals: pd.DataFrame, quantiles: pd.DataFrame, index: pd.Index) -> pd.Series:
-    """A per-row text of all bounds, so rows can be compared for equality in one groupby."""
+    """A 64-bit fingerprint of each row's interval bounds and quantiles (0 for none).
+
+    Each bound is hashed in C and the hashes of one row are combined with XOR, so the
+    fingerprint does not depend on column order and a whole chunk is compared in one pass.
+    """
     parts = []
-    for frame, kind in ((intervals, "level"), (quantiles, "prob")):
-        if len(frame):
-            text = (
-                frame[kind].astype(str)
-                + ":"
-                + frame.drop(columns=["row", kind]).astype(str).agg("/".join, axis=1)
+    if len(intervals):
+        parts.append(
+            pd.DataFrame(
+                {
+                    "row": intervals["row"].to_numpy(),
+                    "k": 1,
+                    "a": intervals["level"].to_numpy(np.float64),
+                    "b": intervals["lower"].to_numpy(np.float64),
+                    "c": intervals["upper"].to_numpy(np.float64),
+                }
             )
-            parts.append(pd.DataFrame({"row": frame["row"].astype(int), "t": text}))
+        )
+    if len(quantiles):
+        parts.append(
+            pd.DataFrame(
+                {
+                    "row": quantiles["row"].to_numpy(),
+                    "k": 2,
+                    "a": quantiles["prob"].to_numpy(np.float64),
+                    "b": quantiles["value"].to_numpy(np.float64),
+                    "c": 0.0,
+                }
+            )
+        )
     if not parts:
-        return pd.Series("", index=index)
-    joined = pd.concat(parts).groupby("row")["t"].agg("|".join)
-    return joined.reindex(index).fillna("")
+        return pd.Series(np.zeros(len(index), dtype=np.uint64), index=index)
+    long = pd.concat(parts, ignore_index=True).sort_values("row", kind="stable")
+    hashes = pd.util.hash_pandas_object(long[["k", "a", "b", "c"]], index=False).to_numpy()
+    rows = long["row"].to_numpy()
+    starts = np.flatnonzero(np.r_[True, rows[1:] != rows[:-1]])
+    combined = np.bitwise_xor.reduceat(hashes, starts)
+    return pd.Series(combined, index=rows[starts]).reindex(index, fill_value=np.uint64(0))
 
 
 def _package(
