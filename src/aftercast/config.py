@@ -17,6 +17,7 @@ from typing import Any
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from aftercast.alerts.config import Channels, DeliveryConfig, Routes, Rules
 from aftercast.errors import ConfigError
 
 DEFAULT_CONFIG_PATH = Path("config/aftercast.yaml")
@@ -109,6 +110,10 @@ class Config(_Strict):
     windows: list[WindowConfig] = Field(default_factory=list)
     horizon_buckets: list[str] = Field(default_factory=list)
     ingest: IngestConfig = IngestConfig()
+    channels: Channels = Field(default_factory=list)
+    routes: Routes = Field(default_factory=list)  # after `channels`: it checks their names
+    delivery: DeliveryConfig = DeliveryConfig()
+    rules: Rules = Field(default_factory=list)
 
     @field_validator("horizon_buckets")
     @classmethod

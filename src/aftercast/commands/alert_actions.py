@@ -1,0 +1,229 @@
+"""Commands on alerts and their rules: `alerts ack|snooze|unsnooze|history|notifications`,
+`rules check`.
+
+The actions hang under the `alerts` command: when another module has registered `alerts`
+already, they attach to its parser, otherwise this module registers `alerts` itself, listing the
+alerts with their lifecycle state. Every change is recorded as a transition carrying the name
+given by `--by` (default: the login name). `rules check` explains the rules, routes and
+channels in force in words; the config was validated on loading, so reaching it means the
+configuration is valid. Channel secrets are never printed: channels are shown by name and type.
+"""
+
+from __future__ import annotations
+
+import argparse
+import getpass
+import re
+import time
+from typing import Any
+
+from aftercast.alerts.listing import alert_rows, transitions_of
+from aftercast.alerts.routing import EVERY_ALERT, route_names
+from aftercast.alerts.rules import effective_rules, explain_rule, is_default
+from aftercast.alerts.store import find_alert_ids, set_attention
+from aftercast.cli import print_json
+from aftercast.commands.core import open_store
+from aftercast.config import Config, load_config
+from aftercast.errors import AftercastError
+from aftercast.notify.outbox import DEAD, PENDING, notification_listing, outbox_counts
+from aftercast.periods import parse_instant, to_iso
+
+_DURATION = re.compile(r"^(\d+(?:\.\d+)?)\s*([mhdw])$")
+_UNIT_SECONDS = {"m": 60, "h": 3600, "d": 86_400, "w": 604_800}
+
+
+def register(commands: Any) -> None:
+    alerts = commands.choices.get("alerts")
+    if alerts is None:
+        alerts = commands.add_parser("alerts", help="alerts with their state; ack and snooze")
+        alerts.add_argument("--json", action="store_true", help="print a JSON array")
+        alerts.add_argument("--all", action="store_true", help="include cleared alerts")
+        alerts.set_defaults(handler=cmd_alerts)
+    actions = alerts.add_subparsers(dest="alert_action", metavar="ACTION")
+    for name, verb in (("ack", "acknowledge"), ("snooze", "snooze"), ("unsnooze", "unsnooze")):
+        action = actions.add_parser(name, help=f"{verb} alerts (by id, or all of one series)")
+        action.add_argument("ids", nargs="*", type=int, metavar="ID")
+        action.add_argument("--series", help="every open alert of this series")
+        action.add_argument("--rule", help="with --series: only this rule's alerts")
+        action.add_argument("--by", help="who does it (default: your login name)")
+        action.add_argument("--note", default="", help="why, kept with the transition")
+        if name == "snooze":
+            action.add_argument(
+                "--until", required=True, help="ISO 8601 time, or a duration: 30m, 4h, 2d, 1w"
+            )
+        action.set_defaults(handler=cmd_attention, verb=verb)
+    history = actions.add_parser("history", help="every transition of one alert")
+    history.add_argument("alert_id", type=int, metavar="ID")
+    history.add_argument("--json", action="store_true")
+    history.set_defaults(handler=cmd_history)
+    sent = actions.add_parser("notifications", help="notifications waiting, retrying or dead")
+    sent.add_argument("--json", action="store_true")
+    sent.add_argument("--delivered", action="store_true", help="include delivered ones")
+    sent.set_defaults(handler=cmd_notifications)
+
+    rules = commands.add_parser("rules", help="alert rules")
+    rule_actions = rules.add_subparsers(dest="rules_action", metavar="ACTION", required=True)
+    check = rule_actions.add_parser("check", help="validate and explain the rules in force")
+    check.add_argument("--json", action="store_true")
+    check.set_defaults(handler=cmd_rules_check)
+
+
+def until_instant(text: str, now: int) -> int:
+    """Epoch seconds of `--until`: an ISO 8601 time or a duration from now ("4h", "2d")."""
+    found = _DURATION.match(text.strip())
+    if found:
+        return now + int(float(found.group(1)) * _UNIT_SECONDS[found.group(2)])
+    try:
+        moment = parse_instant(text)
+    except ValueError:
+        raise AftercastError(
+            f"--until {text!r} is neither an ISO 8601 time nor a duration like 4h or 2d"
+        ) from None
+    if moment <= now:
+        raise AftercastError(f"--until {text!r} is in the past")
+    return moment
+
+
+def cmd_attention(args: argparse.Namespace) -> int:
+    if bool(args.ids) == bool(args.series):
+        raise AftercastError(f"alerts {args.alert_action}: give alert ids or --series, not both")
+    config = load_config(args.config)
+    engine = open_store(config)
+    now = int(time.time())
+    until = until_instant(args.until, now) if args.verb == "snooze" else None
+    with engine.connect() as connection:
+        ids = find_alert_ids(connection, args.ids, args.series, args.rule)
+    if not ids:
+        raise AftercastError(f"--series {args.series!r}: no open alert matches")
+    actor = args.by or getpass.getuser()
+    done = set_attention(engine, ids, args.verb, actor, now, until=until, note=args.note)
+    suffix = f" until {to_iso(until)}" if until is not None else ""
+    past = {"acknowledge": "acknowledged", "snooze": "snoozed", "unsnooze": "unsnoozed"}
+    print(f"{past[args.verb]} {done} of {len(ids)} alert(s){suffix} as {actor}")
+    if args.verb == "acknowledge" and done < len(ids):
+        print("only raised alerts can be acknowledged; the others were left as they are")
+    return 0
+
+
+def _alert_line(row: dict[str, Any]) -> str:
+    flags = []
+    if row["acknowledged_by"]:
+        flags.append(f"ack by {row['acknowledged_by']}")
+    if row["snoozed_until"]:
+        flags.append(f"snoozed until {row['snoozed_until']}")
+    if row["notification_status"] in (PENDING, DEAD) and row["notification_attempts"]:
+        flags.append(
+            f"notification {row['notification_status']} after "
+            f"{row['notification_attempts']} attempt(s): {row['notification_detail']}"
+        )
+    tail = f" [{'; '.join(flags)}]" if flags else ""
+    return (
+        f"#{row['id']} {row['state']:<12} {row['severity']:<8} {row['rule']} "
+        f"{row['series_id']} / {row['model']} h{row['horizon']} since {row['opened_at']}: "
+        f"{row['summary']}{tail}"
+    )
+
+
+def cmd_alerts(args: argparse.Namespace) -> int:
+    config = load_config(args.config)
+    engine = open_store(config)
+    with engine.connect() as connection:
+        rows = alert_rows(connection, include_cleared=args.all)
+        counts = outbox_counts(connection)
+    if args.json:
+        print_json(rows)
+        return 0
+    for row in rows:
+        print(_alert_line(row))
+    if not rows:
+        print("no open alerts" if not args.all else "no alerts")
+    print(
+        f"notifications: {counts[PENDING]} pending ({counts['retrying']} retrying), "
+        f"{counts['delivered']} delivered, {counts[DEAD]} dead"
+        + ("; see `aftercast alerts notifications`" if counts[DEAD] or counts["retrying"] else "")
+    )
+    return 0
+
+
+def cmd_history(args: argparse.Namespace) -> int:
+    engine = open_store(load_config(args.config))
+    with engine.connect() as connection:
+        find_alert_ids(connection, [args.alert_id])
+        rows = transitions_of(connection, args.alert_id)
+    if args.json:
+        print_json(rows)
+        return 0
+    for row in rows:
+        note = f" ({row['note']})" if row["note"] else ""
+        print(
+            f"{row['at']} {row['event']:<12} {row['from_state'] or '-'} -> {row['to_state']} "
+            f"by {row['actor']}{note}"
+        )
+    return 0
+
+
+def cmd_notifications(args: argparse.Namespace) -> int:
+    engine = open_store(load_config(args.config))
+    statuses = (PENDING, DEAD, "delivered") if args.delivered else (PENDING, DEAD)
+    with engine.connect() as connection:
+        frame = notification_listing(connection, statuses, limit=200)
+    for column in ("created_at", "due_at", "last_attempt_at", "delivered_at"):
+        frame[column] = [to_iso(v) for v in frame[column]]
+    rows = frame.astype(object).where(frame.notna(), None).to_dict("records")
+    if args.json:
+        print_json(rows)
+        return 0
+    for row in rows:
+        print(
+            f"{row['notification_id']} {row['status']:<9} {row['channel']} ({row['kind']}, "
+            f"{row['alert_count']} alerts) attempts {row['attempts']}, next {row['due_at']}: "
+            f"{row['detail'] or '-'}"
+        )
+    if not rows:
+        print("no notifications waiting or dead")
+    return 0
+
+
+def rules_report(config: Config) -> dict[str, Any]:
+    """The rules, routes and channels in force, explained; what `rules check --json` prints."""
+    rules = effective_rules(config.rules)
+    routes = config.routes
+    names = route_names(routes)
+    return {
+        "rules": [
+            {
+                "name": r.name,
+                "detection": r.detection,
+                "default": is_default(r),
+                "explanation": explain_rule(r),
+            }
+            for r in rules
+        ],
+        "disabled": [r.name for r in config.rules if not r.enabled],
+        "routes": [
+            {"name": n, "match": r.match, "channels": r.channels}
+            for n, r in zip(names, routes, strict=True)
+        ]
+        or [{"name": EVERY_ALERT, "match": {}, "channels": [c.name for c in config.channels]}],
+        "channels": [{"name": c.name, "type": c.type} for c in config.channels],
+    }
+
+
+def cmd_rules_check(args: argparse.Namespace) -> int:
+    report = rules_report(load_config(args.config))
+    if args.json:
+        print_json(report)
+        return 0
+    print(f"config is valid: {len(report['rules'])} rule(s) in force")
+    for rule in report["rules"]:
+        print(("  (default) " if rule["default"] else "  ") + rule["explanation"])
+    for name in report["disabled"]:
+        print(f"  {name}: switched off")
+    if not report["channels"]:
+        print("no channels: alerts are tracked but nothing is sent")
+    for route in report["routes"]:
+        match = ", ".join(f"{k}={v}" for k, v in route["match"].items()) or "every alert"
+        print(f"route {route['name']}: {match} -> {', '.join(route['channels']) or 'nothing'}")
+    if report["channels"]:
+        print("channels: " + ", ".join(f"{c['name']} ({c['type']})" for c in report["channels"]))
+    return 0
