@@ -119,9 +119,7 @@ def test_raised_again_is_a_new_episode_of_the_same_alert(
 def test_reminders_stop_once_acknowledged(
     sqlite_url: str, smtp: SmtpRecorder, capsys: pytest.CaptureFixture[str], tmp_path: Any
 ) -> None:
-    config = mail_config(
-        sqlite_url, smtp.port, remind_every_hours=12, raise_after=1, clear_after=1
-    )
+    config = mail_config(sqlite_url, smtp.port, remind_every_hours=12, raise_after=1, clear_after=1)
     engine = store(config)
     hours = 3600
     run(engine, config, [True, True, True], step=6 * hours)  # raised at 0 h, reminded at 12 h

@@ -25,9 +25,7 @@ START = 1_714_521_600  # 2024-05-01T00:00:00Z
 MODEL = "shop-planner"
 
 
-def seed(
-    engine: Engine, config: Config, labels: dict[str, dict[str, str]], days: int = 21
-) -> None:
+def seed(engine: Engine, config: Config, labels: dict[str, dict[str, str]], days: int = 21) -> None:
     """Series with `labels` (key -> labels), daily forecasts issued a day ahead, and actuals."""
     ingest_records(
         engine,

@@ -2,8 +2,9 @@
 
 Each row names the series and model by their own keys, says the lifecycle state, since when,
 who acknowledged or snoozed it, the latest evidence, and how its latest notification fared
-(delivered, retrying with the reason, or dead), so a channel that fails is visible where the
-alerts are. Nothing here ever holds a channel's configuration, so no secret can show.
+(delivered, retrying with the reason, or dead; a failing one is shown before a later success
+on another channel), so a channel that fails is visible where the alerts are. Nothing here
+ever holds a channel's configuration, so no secret can show.
 """
 
 from __future__ import annotations
@@ -25,9 +26,12 @@ _SELECT = (
     "o.status AS notification_status, o.attempts AS notification_attempts, "
     "o.detail AS notification_detail "
     "FROM alerts a JOIN series s ON s.id = a.series_id JOIN models m ON m.id = a.model_id "
-    "LEFT JOIN (SELECT l.alert_id, MAX(l.outbox_id) AS outbox_id FROM outbox_alerts l "
-    "GROUP BY l.alert_id) latest ON latest.alert_id = a.id "
-    "LEFT JOIN notification_outbox o ON o.id = latest.outbox_id"
+    # The alert's failing notification if it has one (retrying or dead), else its latest.
+    "LEFT JOIN (SELECT l.alert_id, MAX(n.id) AS latest_id, MAX(CASE WHEN n.status = 'dead' "
+    "OR (n.status = 'pending' AND n.attempts > 0) THEN n.id END) AS failing_id "
+    "FROM outbox_alerts l JOIN notification_outbox n ON n.id = l.outbox_id "
+    "GROUP BY l.alert_id) sent ON sent.alert_id = a.id "
+    "LEFT JOIN notification_outbox o ON o.id = COALESCE(sent.failing_id, sent.latest_id)"
 )
 _TIMES = ("since_at", "raised_at", "cleared_at", "acknowledged_at", "snoozed_until")
 

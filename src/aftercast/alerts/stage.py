@@ -30,7 +30,6 @@ from aftercast.alerts.routing import (
     routing_labels,
 )
 from aftercast.alerts.rules import (
-    DETECTIONS,
     RuleConfig,
     effective_rules,
     evaluate_rules,
@@ -96,7 +95,17 @@ def apply_findings(
         evaluated["fingerprint"] = fingerprint(
             evaluated["rule"], evaluated["series_id"], evaluated["model_id"], evaluated["horizon"]
         )
-        evaluated["summary"] = evaluated["detection"].map(DETECTIONS)
+        evaluated["summary"] = [
+            summary_line(str(d), e, s, p, n)
+            for d, e, s, p, n in zip(
+                evaluated["detection"],
+                evaluated["evidence"],
+                evaluated["statistic"],
+                evaluated["p_value"],
+                evaluated["n"],
+                strict=True,
+            )
+        ]
         moved = advance(load_alerts(connection, evaluated), evaluated, rule_parameters(rules), now)
         ids = save_advance(connection, moved, cycle_id, now)
         digests = _digests(connection, config, moved, ids, names, rules, now)
@@ -129,13 +138,6 @@ def _lines(moved: Advance, ids: pd.Series, names: Names, rules: list[RuleConfig]
         series_labels, rule_labels, lines[["rule", "severity", "model"]]
     )
     lines["opened_at"] = lines["since_at"].map(lambda t: to_iso(t) or "")
-    detection = lines["rule"].map(lambda r: by_rule[r].detection if r in by_rule else r)
-    lines["summary"] = [
-        summary_line(str(d), e, s, p)
-        for d, e, s, p in zip(
-            detection, lines["evidence"], lines["statistic"], lines["p_value"], strict=True
-        )
-    ]
     lines["state"] = np.where(lines["kind"] == "cleared", "cleared", lines["state"])
     return lines
 
