@@ -28,6 +28,7 @@ Handler = Callable[[argparse.Namespace], int]
 # function it sets as the parser default `handler`; a new command is one new module and one line.
 COMMAND_MODULES = (
     "aftercast.commands.core",
+    "aftercast.commands.daemon",
     "aftercast.commands.alert_actions",
 )
 

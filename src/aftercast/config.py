@@ -19,6 +19,8 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from aftercast.alerts.config import Channels, DeliveryConfig, Routes, Rules
 from aftercast.errors import ConfigError
+from aftercast.sources import SourceList
+from aftercast.web.settings import ApiConfig, ScheduleConfig, WebConfig
 
 DEFAULT_CONFIG_PATH = Path("config/aftercast.yaml")
 _ENV_REF = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}")
@@ -110,6 +112,10 @@ class Config(_Strict):
     windows: list[WindowConfig] = Field(default_factory=list)
     horizon_buckets: list[str] = Field(default_factory=list)
     ingest: IngestConfig = IngestConfig()
+    sources: SourceList = Field(default_factory=list)
+    schedule: ScheduleConfig = ScheduleConfig()
+    api: ApiConfig = ApiConfig()
+    web: WebConfig = WebConfig()
     channels: Channels = Field(default_factory=list)
     routes: Routes = Field(default_factory=list)  # after `channels`: it checks their names
     delivery: DeliveryConfig = DeliveryConfig()

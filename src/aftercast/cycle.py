@@ -15,6 +15,7 @@ from sqlalchemy import Engine, update
 
 from aftercast.config import Config
 from aftercast.matching import match
+from aftercast.sources import pull_all
 from aftercast.store import schema
 from aftercast.store.db import write
 
@@ -54,6 +55,10 @@ def run_cycle(engine: Engine, config: Config, now: int | None = None) -> CycleRe
     now = int(time.time()) if now is None else now
     started = time.perf_counter()
     report = CycleReport(cycle_id=_open_cycle(engine, now), now=now)
+
+    mark = time.perf_counter()
+    pull_all(engine, config, now, report.cycle_id)
+    report.stages["sources"] = time.perf_counter() - mark
 
     mark = time.perf_counter()
     matched = match(engine, now)

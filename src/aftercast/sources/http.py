@@ -1,0 +1,183 @@
+"""HTTP source: a GET with requests, answering CSV, JSON or JSON Lines rows.
+
+Timeouts bound every attempt; timeouts, refused connections, 408, 429 and 5xx answers are
+retried `retries` times with a doubling pause (a `Retry-After` the server sends is honoured up
+to a minute); any other answer is a failure at once. Header values come from the config, where
+`${NAME}` is read from the environment at start-up, or from `headers_from_env`, read at every
+pull so that a rotated token is picked up without a restart. A body larger than `max_bytes` is
+refused rather than held in memory. `clean_records` is shared with the push endpoints: it turns
+a JSON array into rows the way the JSON Lines reader does.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import time
+from collections.abc import Iterator
+from itertools import chain
+from typing import Any, Literal
+
+import pandas as pd
+import requests
+from pydantic import Field, SecretStr
+
+from aftercast.errors import InputFileError
+from aftercast.sources.base import Batch, Source, SourceError, SourceSettings, SourceState
+from aftercast.sources.files import Chunk
+
+RETRY_STATUSES = {408, 429, 500, 502, 503, 504}
+MAX_PAUSE_SECONDS = 60.0
+
+
+class HttpSettings(SourceSettings):
+    type: Literal["http"] = "http"
+    url: str
+    format: Literal["csv", "json", "jsonl"] = "json"
+    records_key: str | None = None  # JSON object answers: dotted path to the array of rows
+    headers: dict[str, SecretStr] = Field(default_factory=dict)  # values may be tokens
+    headers_from_env: dict[str, str] = Field(default_factory=dict)  # header -> variable name
+    timeout_seconds: float = Field(10.0, gt=0)
+    retries: int = Field(3, ge=0, le=10)
+    backoff_seconds: float = Field(1.0, ge=0)
+    max_bytes: int = Field(200_000_000, ge=1)
+
+
+def clean_records(items: list[Any]) -> list[dict[str, Any]]:
+    """Rows from a parsed JSON array: nested values become JSON text, non-objects are kept as
+    unparseable rows so that they are quarantined with their number instead of vanishing."""
+    rows: list[dict[str, Any]] = []
+    for item in items:
+        if not isinstance(item, dict):
+            rows.append({"__unparseable__": json.dumps(item)[:500]})
+            continue
+        rows.append(
+            {
+                str(key): json.dumps(value) if isinstance(value, dict | list) else value
+                for key, value in item.items()
+            }
+        )
+    return rows
+
+
+def csv_chunks(body: bytes, chunk_rows: int, label: str) -> Iterator[Chunk]:
+    """CSV bytes as chunks of text values, read as `aftercast ingest` reads a CSV file.
+
+    An empty body yields nothing; a body that is not CSV raises InputFileError naming `label`.
+    """
+    try:
+        reader = pd.read_csv(
+            io.BytesIO(body),
+            dtype=str,
+            keep_default_na=False,
+            chunksize=chunk_rows,
+            encoding="utf-8",
+            skipinitialspace=True,
+        )
+        first = 1
+        for frame in reader:
+            yield Chunk(frame, first)
+            first += len(frame)
+    except pd.errors.EmptyDataError:
+        return
+    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+        detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputFileError(f"{label}: not readable CSV ({detail})") from None
+
+
+def _records_at(document: Any, key: str | None) -> list[Any]:
+    for part in key.split(".") if key else []:
+        if not isinstance(document, dict) or part not in document:
+            raise SourceError(f"records_key {key!r}: the answer has no {part!r}")
+        document = document[part]
+    if not isinstance(document, list):
+        raise SourceError("the answer is not a JSON array of rows (set records_key?)")
+    return document
+
+
+def _frames(records: list[dict[str, Any]], chunk_rows: int) -> Iterator[Chunk]:
+    for start in range(0, len(records), chunk_rows):
+        yield Chunk(pd.DataFrame.from_records(records[start : start + chunk_rows]), start + 1)
+
+
+class HttpSource(Source):
+    settings_type = HttpSettings
+    settings: HttpSettings
+
+    def _headers(self) -> dict[str, str]:
+        headers = {k: v.get_secret_value() for k, v in self.settings.headers.items()}
+        for header, variable in self.settings.headers_from_env.items():
+            if variable not in os.environ:
+                raise SourceError(f"headers_from_env.{header}: variable {variable} is not set")
+            headers[header] = os.environ[variable]
+        return headers
+
+    def _pause(self, attempt: int, response: requests.Response | None) -> float:
+        hint = response.headers.get("Retry-After", "") if response is not None else ""
+        if hint.isdigit():
+            return min(float(hint), MAX_PAUSE_SECONDS)
+        return min(self.settings.backoff_seconds * 2**attempt, MAX_PAUSE_SECONDS)
+
+    def _read(self, response: requests.Response) -> bytes:
+        body = bytearray()
+        for block in response.iter_content(1 << 16):
+            body.extend(block)
+            if len(body) > self.settings.max_bytes:
+                raise SourceError(f"the answer is larger than max_bytes={self.settings.max_bytes}")
+        return bytes(body)
+
+    def fetch(self) -> tuple[bytes, int]:
+        """The body of a successful answer and the number of attempts it took."""
+        headers, timeout = self._headers(), self.settings.timeout_seconds
+        attempts = self.settings.retries + 1
+        problem = ""
+        for attempt in range(attempts):
+            response = None
+            try:
+                response = requests.get(
+                    self.settings.url, headers=headers, timeout=(timeout, timeout), stream=True
+                )
+                with response:
+                    if response.status_code < 300:
+                        return self._read(response), attempt + 1
+                    problem = f"HTTP {response.status_code} {response.reason}"
+                    if response.status_code not in RETRY_STATUSES:
+                        raise SourceError(f"GET {self.settings.url}: {problem}", attempt + 1)
+            except requests.Timeout:
+                problem = f"no answer within {timeout:g}s (timeout)"
+            except requests.ConnectionError as exc:
+                problem = f"cannot connect ({type(exc).__name__})"
+            except requests.RequestException as exc:
+                raise SourceError(f"GET {self.settings.url}: {exc}", attempt + 1) from None
+            if attempt + 1 < attempts:
+                time.sleep(self._pause(attempt, response))
+        raise SourceError(
+            f"GET {self.settings.url}: {problem}; gave up after {attempts} attempts", attempts
+        )
+
+    def _chunks(self, body: bytes) -> Iterator[Chunk]:
+        if self.settings.format == "csv":
+            return csv_chunks(body, self.chunk_rows, self.settings.url)
+        try:
+            text = body.decode("utf-8")
+            if self.settings.format == "jsonl":
+                items = [json.loads(line) for line in text.splitlines() if line.strip()]
+            else:
+                items = _records_at(json.loads(text), self.settings.records_key) if text else []
+        except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise SourceError(
+                f"GET {self.settings.url}: not {self.settings.format}: {exc}"
+            ) from None
+        return _frames(clean_records(items), self.chunk_rows)
+
+    def batches(self, state: SourceState) -> Iterator[Batch]:
+        body, self.attempts = self.fetch()
+        chunks = self._chunks(body)
+        try:
+            first = next(chunks, None)
+        except InputFileError as exc:
+            raise SourceError(str(exc), self.attempts) from None
+        if first is None or first.frame.empty:
+            return  # nothing new is not a failure
+        yield Batch(label=self.settings.url, chunks=chain([first], chunks))
