@@ -193,7 +193,10 @@ def evaluate_rules(
     """
     if findings.empty or not rules:
         return pd.DataFrame(columns=EVALUATION_COLUMNS)
-    table = label_frame(series_labels).reindex(findings["series_id"].to_numpy())
+    # Only the series that have findings: a label table of the whole fleet is not needed.
+    present = series_labels.reindex(findings["series_id"].unique())
+    present = present.map(lambda v: v if isinstance(v, dict) else {})
+    table = label_frame(present).reindex(findings["series_id"].to_numpy())
     parts = []
     for rule in rules:
         scope = (findings["detection"] == rule.detection).to_numpy()

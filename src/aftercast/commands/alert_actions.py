@@ -39,7 +39,7 @@ def register(commands: Any) -> None:
         alerts.add_argument("--json", action="store_true", help="print a JSON array")
         alerts.add_argument("--all", action="store_true", help="include cleared alerts")
         alerts.set_defaults(handler=cmd_alerts)
-    actions = alerts.add_subparsers(dest="alert_action", metavar="ACTION")
+    actions = _actions_of(alerts)
     for name, verb in (("ack", "acknowledge"), ("snooze", "snooze"), ("unsnooze", "unsnooze")):
         action = actions.add_parser(name, help=f"{verb} alerts (by id, or all of one series)")
         action.add_argument("ids", nargs="*", type=int, metavar="ID")
@@ -68,6 +68,14 @@ def register(commands: Any) -> None:
     check.set_defaults(handler=cmd_rules_check)
 
 
+def _actions_of(parser: argparse.ArgumentParser) -> Any:
+    """The parser's sub-command group: the one another module made, else a new one."""
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            return action
+    return parser.add_subparsers(dest="alert_action", metavar="ACTION")
+
+
 def until_instant(text: str, now: int) -> int:
     """Epoch seconds of `--until`: an ISO 8601 time or a duration from now ("4h", "2d")."""
     found = _DURATION.match(text.strip())
@@ -86,7 +94,7 @@ def until_instant(text: str, now: int) -> int:
 
 def cmd_attention(args: argparse.Namespace) -> int:
     if bool(args.ids) == bool(args.series):
-        raise AftercastError(f"alerts {args.alert_action}: give alert ids or --series, not both")
+        raise AftercastError("give alert ids or --series (not both)")
     config = load_config(args.config)
     engine = open_store(config)
     now = int(time.time())
