@@ -12,6 +12,7 @@ from __future__ import annotations
 import json
 from html.parser import HTMLParser
 from pathlib import Path
+from urllib.parse import quote
 
 from standardwebhooks import Webhook
 
@@ -58,6 +59,7 @@ def test_three_hundred_series_fifty_alerts_three_messages(tmp_path: Path) -> Non
             ],
             rules=[{"detection": "coverage_low", "raise_after": 1}],
             delivery={"digest_max_alerts": 40, "charts_per_digest": 3},
+            web={"base_url": "http://aftercast.example.test"},
         )
         engine = make_engine(config.store.url)
         migrate(engine)
@@ -84,6 +86,7 @@ def test_three_hundred_series_fifty_alerts_three_messages(tmp_path: Path) -> Non
     assert event["type"] == "org.aftercast.alert.digest"
     assert sorted(a["series_id"] for a in event["data"]["alerts"]) == ops
     assert {a["labels"]["team"] for a in event["data"]["alerts"]} == {"ops"}
+    assert event["data"]["dashboard_url"] == "http://aftercast.example.test/"  # several series
 
     lines = (tmp_path / "alerts.jsonl").read_text().splitlines()
     assert len(lines) == 1
@@ -112,6 +115,7 @@ def test_markup_in_a_series_id_is_escaped_in_the_html(tmp_path: Path) -> None:
             f"sqlite:///{tmp_path / 'a.db'}",
             channels=channels(smtp, hook, tmp_path)[:1],
             rules=[{"detection": "coverage_low", "raise_after": 1}],
+            web={"base_url": "http://aftercast.example.test/"},
         )
         engine = make_engine(config.store.url)
         migrate(engine)
@@ -125,3 +129,7 @@ def test_markup_in_a_series_id_is_escaped_in_the_html(tmp_path: Path) -> None:
     assert "script" not in parser.tags and "b" not in parser.tags
     assert NASTY_SERIES_ID in "".join(parser.text)
     assert "&lt;script&gt;" in html
+    # One series: the link goes to its page, the id percent-encoded (RFC 3986 section 2.1).
+    page = "http://aftercast.example.test/series/" + quote(NASTY_SERIES_ID, safe="")
+    text = smtp.messages[0].message.get_body(preferencelist=("plain",)).get_content()
+    assert f"Dashboard: {page}" in text

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import TYPE_CHECKING, Annotated, Any, Union
 
-from pydantic import AfterValidator, BaseModel, ConfigDict, Field, HttpUrl, ValidationInfo
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, ValidationInfo
 
 from aftercast.alerts.routing import RouteConfig, check_routes
 from aftercast.alerts.rules import RuleConfig, check_rule_list, check_unique_names
@@ -34,7 +34,6 @@ class DeliveryConfig(BaseModel):
     batch_size: int = Field(100, ge=1, le=10_000)
     digest_max_alerts: int = Field(40, ge=1, le=10_000)
     charts_per_digest: int = Field(3, ge=0, le=20)
-    dashboard_url: HttpUrl | None = None  # a link put in every message, e.g. the status page
 
 
 def _check_channels(channels: list[ChannelConfigBase]) -> list[ChannelConfigBase]:

@@ -14,6 +14,7 @@ import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
+from urllib.parse import quote
 
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field
@@ -129,13 +130,15 @@ def build_digests(
     created_at: str,
     charts: Mapping[int, ChartData],
     per_digest: int,
-    dashboard_url: str | None = None,
+    base_url: str | None = None,
 ) -> list[Digest]:
     """One notification per (route, channel, kind) present in `routed`, worst alerts first.
 
     `routed` comes from `assign_routes` with, per line: alert_id, kind, series_id, model,
     horizon, rule, state, severity, opened_at (ISO 8601), summary, evidence, labels, p_value.
     `charts` maps an alert id to its chart; the first `per_digest` alerts of a digest carry one.
+    With `base_url` (the web pages), a digest links to its series' page, or to the overview
+    when it is about several series.
     """
     if routed.empty:
         return []
@@ -153,11 +156,19 @@ def build_digests(
             alerts=[_line(row) for row in shown.to_dict("records")],
             more=len(group) - len(shown),
             charts=drawn,
-            dashboard_url=dashboard_url,
+            dashboard_url=_link(base_url, group["series_id"]),
         )
         ids = group["alert_id"].astype("int64").tolist()
         digests.append(Digest(notification, ids))
     return digests
+
+
+def _link(base_url: str | None, series: pd.Series) -> str | None:
+    if not base_url:
+        return None
+    root = base_url.rstrip("/")
+    keys = series.unique()
+    return f"{root}/series/{quote(str(keys[0]), safe='')}" if len(keys) == 1 else f"{root}/"
 
 
 def new_notification_id() -> str:

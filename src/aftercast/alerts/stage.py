@@ -188,5 +188,5 @@ def _digests(
         created_at=str(to_iso(int(time.time()))),
         charts=charts,
         per_digest=delivery.charts_per_digest,
-        dashboard_url=str(delivery.dashboard_url) if delivery.dashboard_url else None,
+        base_url=config.web.base_url,
     )
