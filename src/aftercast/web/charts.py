@@ -161,16 +161,16 @@ def pit_chart(histogram: PitHistogram) -> str:
         edgecolor="white",
         linewidth=0.8,
     )
-    ax.axhline(1.0, color=GREY, linestyle="--", linewidth=1, label="calibrated")
+    ax.axhline(1.0, color=GREY, linestyle="--", linewidth=1)
     ax.set_xlim(0, 1)
     ax.set_xlabel("forecast probability below the outcome (PIT)", fontsize=FONT_SIZE)
     ax.set_ylabel("observed / expected", fontsize=FONT_SIZE)
     ax.set_title(
-        f"{histogram.n} outcomes; outer bins (beyond the extreme quantiles) in red",
+        f"{histogram.n} outcomes; dashed line: calibrated; outer bins (beyond the extreme "
+        "quantiles) in red",
         loc="left",
         fontsize=FONT_SIZE,
         color=GREY,
         parse_math=False,
     )
-    ax.legend(loc="upper center", fontsize=FONT_SIZE - 1, frameon=False)
     return _svg(fig)

@@ -130,6 +130,7 @@ def overview(
         "window": chosen,
         "windows": state.config.all_windows(),
         "now": to_iso(at),
+        "clock": now,  # a `now` the page was asked for, carried into its links
         "link": lambda **changes: _link(request, **changes),
     }
     return TEMPLATES.TemplateResponse(request, "overview.html", context)
@@ -191,6 +192,7 @@ def series_page(
         "days": days,
         "window": chosen,
         "now": to_iso(at),
+        "clock": now,
         "link": lambda **changes: _link(request, **changes),
     }
     return TEMPLATES.TemplateResponse(request, "series.html", context)
