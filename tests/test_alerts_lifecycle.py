@@ -10,6 +10,7 @@ the standard library's RFC 5322 parser reads them; every transition is read back
 
 from __future__ import annotations
 
+import json
 import time
 from collections.abc import Iterator
 from typing import Any
@@ -155,8 +156,17 @@ def test_snoozed_raise_waits_for_the_snooze_to_end(
     assert alerts(engine)["state"].tolist() == ["raised"]
     run(engine, config, [True], start=wall + 3 * DAY)  # snooze over: the raise goes out now
     assert [m.message["Subject"].split()[1] for m in smtp.messages] == ["CRITICAL"]
-    events = transitions(engine)["event"].tolist()
-    assert events == ["opened", "snoozed", "raised"]
+    assert main(["--config", str(path), "alerts", "history", alert_id, "--json"]) == 0
+    history = json.loads(capsys.readouterr().out)
+    assert [(h["event"], h["to_state"]) for h in history] == [
+        ("opened", "pending"),
+        ("snoozed", "pending"),
+        ("raised", "raised"),
+    ]
+    assert history[1]["evidence"]["until"] > wall + DAY  # when the snooze was to end
+    assert main(["--config", str(path), "alerts", "unsnooze", "--series", "store-17"]) == 0
+    assert "unsnoozed 1 of 1" in capsys.readouterr().out
+    assert alerts(engine)["snoozed_until"].isna().all()
 
 
 def test_without_channels_alerts_are_tracked_and_nothing_is_queued(sqlite_url: str) -> None:
