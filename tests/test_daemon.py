@@ -126,7 +126,7 @@ def test_sigterm_during_a_long_pull_still_exits_0_in_time(tmp_path: Path) -> Non
     assert any(line["event"] == "daemon stopped" and line["clean"] is False for line in lines)
 
 
-def test_a_bad_port_is_one_line_and_exit_2(tmp_path: Path) -> None:
+def test_a_bad_or_busy_port_is_one_line_and_exit_2(tmp_path: Path) -> None:
     done = subprocess.run(
         [sys.executable, "-m", "aftercast", "run", "--port", "http"],
         cwd=tmp_path,
@@ -135,6 +135,16 @@ def test_a_bad_port_is_one_line_and_exit_2(tmp_path: Path) -> None:
     )
     assert done.returncode == 2
     assert "not a TCP port" in done.stderr.decode() and b"Traceback" not in done.stderr
+    with socket.create_server(("127.0.0.1", 0)) as busy:
+        port = str(busy.getsockname()[1])
+        done = subprocess.run(
+            [sys.executable, "-m", "aftercast", "run", "--port", port],
+            cwd=tmp_path,
+            capture_output=True,
+            timeout=60,
+        )
+    assert done.returncode == 2 and len(done.stderr.decode().strip().splitlines()) == 1
+    assert "cannot listen" in done.stderr.decode()
 
 
 def test_every_job_runs_alone_coalesces_and_has_a_misfire_grace(tmp_path: Path) -> None:

@@ -16,6 +16,7 @@ from __future__ import annotations
 import logging
 import os
 import signal
+import socket
 import sys
 import threading
 import time
@@ -31,7 +32,7 @@ from sqlalchemy import Engine
 
 from aftercast.config import Config
 from aftercast.cycle import run_cycle
-from aftercast.errors import SchemaOutdatedError
+from aftercast.errors import AftercastError, SchemaOutdatedError
 from aftercast.logs import configure_logging, cycle_scope, log_event
 from aftercast.sources import pull
 from aftercast.sources.base import SourceSettings
@@ -202,8 +203,22 @@ def open_store(config: Config) -> Engine:
     return engine
 
 
+def check_address(host: str, port: int) -> None:
+    """Fail with one line, before anything starts, when the address cannot be listened on."""
+    try:
+        with socket.create_server((host, port)):
+            pass
+    except OSError as exc:
+        raise AftercastError(
+            f"web.host/web.port {host}:{port}: cannot listen ({str(exc.strerror).split(' (')[0]}); "
+            "choose another with --host/--port"
+        ) from None
+
+
 def run_daemon(config: Config, host: str | None = None, port: int | None = None) -> int:
     """Run until SIGTERM or SIGINT; returns the exit code (0)."""
+    host, port = host or config.web.host, port or config.web.port
+    check_address(host, port)
     configure_logging()
     engine = open_store(config)
     metrics = Metrics(engine)
@@ -213,8 +228,8 @@ def run_daemon(config: Config, host: str | None = None, port: int | None = None)
     app = create_app(engine, config, metrics=metrics, scheduler=scheduler)
     settings = uvicorn.Config(
         app,
-        host=host or config.web.host,
-        port=port or config.web.port,
+        host=host,
+        port=port,
         lifespan="off",
         log_config=None,
         access_log=config.web.access_log,
