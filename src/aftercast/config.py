@@ -18,6 +18,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from aftercast.alerts.config import Channels, DeliveryConfig, Routes, Rules
+from aftercast.coordination import CoordinationConfig
 from aftercast.errors import ConfigError
 from aftercast.sources import SourceList
 from aftercast.web.settings import ApiConfig, ScheduleConfig, WebConfig
@@ -120,6 +121,7 @@ class Config(_Strict):
     routes: Routes = Field(default_factory=list)  # after `channels`: it checks their names
     delivery: DeliveryConfig = DeliveryConfig()
     rules: Rules = Field(default_factory=list)
+    coordination: CoordinationConfig = CoordinationConfig()
 
     @field_validator("horizon_buckets")
     @classmethod

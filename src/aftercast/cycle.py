@@ -11,6 +11,7 @@ import time
 from dataclasses import asdict, dataclass, field
 from typing import Any
 
+import numpy as np
 from sqlalchemy import Engine, update
 
 from aftercast.config import Config
@@ -50,8 +51,13 @@ def _close_cycle(engine: Engine, report: CycleReport) -> None:
         )
 
 
-def run_cycle(engine: Engine, config: Config, now: int | None = None) -> CycleReport:
-    """Match and score what changed since the last cycle, as of `now` (default: the clock)."""
+def run_cycle(
+    engine: Engine, config: Config, now: int | None = None, series_ids: np.ndarray | None = None
+) -> CycleReport:
+    """Match and score what changed since the last cycle, as of `now` (default: the clock).
+
+    `series_ids` limits the cycle to those series (a replica's shards); None means all.
+    """
     now = int(time.time()) if now is None else now
     started = time.perf_counter()
     report = CycleReport(cycle_id=_open_cycle(engine, now), now=now)
@@ -61,7 +67,7 @@ def run_cycle(engine: Engine, config: Config, now: int | None = None) -> CycleRe
     report.stages["sources"] = time.perf_counter() - mark
 
     mark = time.perf_counter()
-    matched = match(engine, now)
+    matched = match(engine, now, series_ids=series_ids)
     report.queued, report.pairs_scored = matched.queued, matched.pairs_scored
     report.stages["match"] = time.perf_counter() - mark
 
