@@ -23,6 +23,8 @@ import pytest
 import requests
 
 from aftercast.cli import main
+from aftercast.matching import match
+from aftercast.periods import parse_instant
 from aftercast.web.app import create_app
 from tests.servers import NASTY_SERIES_ID
 from tests.test_web import AUTH, NOW, Fleet, LiveServer, seeded_store
@@ -96,11 +98,9 @@ def site(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Fleet]:
         for kind, body in (("forecasts", rows), ("actuals", actuals)):
             answer = requests.post(f"{live.url}/v1/{kind}", json=body, headers=AUTH, timeout=10)
             assert answer.json()["accepted"] == 7
-        out = io.StringIO()
+        match(engine, parse_instant(NOW))
         config_path = folder / "c.yaml"
         config_path.write_text(f"store: {{url: '{config.store.url}'}}\n", encoding="utf-8")
-        with contextlib.redirect_stdout(out):
-            assert main(["--config", str(config_path), "cycle", "--now", NOW]) == 0
         yield Fleet(engine, config, folder, live.url, [])
     engine.dispose()
 

@@ -11,6 +11,7 @@ failing the scrape. The registry is per application, so tests can build as many 
 
 from __future__ import annotations
 
+import logging
 import time
 from collections.abc import Iterator
 from typing import Any
@@ -23,6 +24,7 @@ from sqlalchemy import Engine, inspect, text
 
 from aftercast.sources.base import SourceResult
 
+log = logging.getLogger("aftercast.web")
 CYCLE_BUCKETS = (0.5, 1, 2.5, 5, 10, 30, 60, 120, 300, 600, 1800)
 
 
@@ -72,54 +74,62 @@ class StoreCollector(Collector):
                 value=row[1],
             )
 
-    def _by_state(
-        self, connection: Any, table: str, column: str, name: str, doc: str
-    ) -> Iterator[Metric]:
-        family = GaugeMetricFamily(name, doc, labels=[column])
-        query = f"SELECT {column}, COUNT(*) FROM {table} GROUP BY {column}"
-        for value, count in connection.execute(text(query)):
-            family.add_metric([str(value)], count)
+    def _alerts(self, connection: Any) -> Iterator[Metric]:
+        family = GaugeMetricFamily(
+            "aftercast_alerts", "Alerts in the store by lifecycle state.", labels=["state"]
+        )
+        for state, count in connection.execute(
+            text("SELECT state, COUNT(*) FROM alerts GROUP BY state")
+        ):
+            family.add_metric([str(state)], count)
         yield family
 
-    def _notifications(self, connection: Any) -> Metric:
-        from aftercast.notify.outbox import outbox_counts
-
+    def _notifications(self, connection: Any) -> Iterator[Metric]:
         family = GaugeMetricFamily(
             "aftercast_notifications",
             "Notifications in the outbox by outcome: pending, retrying (pending after a failed "
             "attempt), delivered, dead.",
             labels=["outcome"],
         )
-        for outcome, count in outbox_counts(connection).items():
+        rows = connection.execute(
+            text(
+                "SELECT status, COUNT(*), SUM(CASE WHEN attempts > 0 THEN 1 ELSE 0 END) "
+                "FROM notification_outbox GROUP BY status"
+            )
+        ).all()
+        counts = {"pending": 0, "retrying": 0, "delivered": 0, "dead": 0}
+        for status, count, tried in rows:
+            counts[str(status)] = int(count)
+            if status == "pending":
+                counts["retrying"] = int(tried or 0)
+        for outcome, count in counts.items():
             family.add_metric([outcome], count)
-        return family
+        yield family
 
     def collect(self) -> Iterator[Metric]:
         up = GaugeMetricFamily("aftercast_store_up", "1 when the store answered this scrape.")
+        parts = {
+            "source_state": lambda c: self._sources(c, time.time()),
+            "cycles": self._cycles,
+            "alerts": self._alerts,
+            "notification_outbox": self._notifications,
+        }
         metrics: list[Metric] = []
         try:
             with self.engine.connect() as connection:
                 tables = set(inspect(connection).get_table_names())
-                if "source_state" in tables:
-                    metrics.extend(self._sources(connection, time.time()))
-                if "cycles" in tables:
-                    metrics.extend(self._cycles(connection))
-                if "alerts" in tables:
-                    metrics.extend(
-                        self._by_state(
-                            connection,
-                            "alerts",
-                            "state",
-                            "aftercast_alerts",
-                            "Alerts in the store by lifecycle state.",
-                        )
-                    )
-                if "notification_outbox" in tables:
-                    metrics.append(self._notifications(connection))
-        except Exception:  # noqa: BLE001 - a scrape must answer even when the store does not
+        except Exception:  # a scrape must answer even when the store does not
             up.add_metric([], 0)
             yield up
             return
+        for table, part in parts.items():
+            if table not in tables:
+                continue
+            try:  # each part on its own connection: one failing query spoils nothing else
+                with self.engine.connect() as connection:
+                    metrics.extend(part(connection))
+            except Exception:
+                log.warning("metrics from table %s could not be read", table, exc_info=True)
         up.add_metric([], 1)
         yield up
         yield from metrics
