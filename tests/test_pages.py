@@ -27,7 +27,7 @@ from aftercast.matching import match
 from aftercast.periods import parse_instant
 from aftercast.web.app import create_app
 from tests.servers import NASTY_SERIES_ID
-from tests.test_web import AUTH, NOW, Fleet, LiveServer, seeded_store
+from tests.test_web import AUTH, NOW, Fleet, LiveServer, daily_rows, seeded_store
 
 CHROMIUM = Path("/usr/bin/chromium")
 ODD_ID = f"shop-999/{NASTY_SERIES_ID}"
@@ -79,22 +79,7 @@ def site(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Fleet]:
     folder = Path(tmp_path_factory.mktemp("pages"))
     engine, config = seeded_store(folder)
     with LiveServer(create_app(engine, config)) as live:
-        rows = [
-            {
-                "series_id": ODD_ID,
-                "model": "m",
-                "issued_at": f"2026-07-0{d}T06:00Z",
-                "target_at": f"2026-07-0{d + 1}",
-                "point": 10,
-                "lower_80": 8,
-                "upper_80": 12,
-            }
-            for d in range(1, 8)
-        ]
-        actuals = [
-            {"series_id": ODD_ID, "observed_at": f"2026-07-0{d + 1}", "value": 9 + d % 3}
-            for d in range(1, 8)
-        ]
+        rows, actuals = daily_rows(ODD_ID, 7, lambda d: 9 + d % 3)
         for kind, body in (("forecasts", rows), ("actuals", actuals)):
             answer = requests.post(f"{live.url}/v1/{kind}", json=body, headers=AUTH, timeout=10)
             assert answer.json()["accepted"] == 7

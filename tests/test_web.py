@@ -109,6 +109,30 @@ def fleet(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Fleet]:
     engine.dispose()
 
 
+def daily_rows(
+    series_id: str, days: int, actual: Any
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    """Day-ahead forecasts (point 10, 80% band 8-12, median 10) from 2026-07-01, and actuals."""
+    forecasts = [
+        {
+            "series_id": series_id,
+            "model": "m",
+            "issued_at": f"2026-07-{d:02d}T06:00Z",
+            "target_at": f"2026-07-{d + 1:02d}",
+            "point": 10,
+            "lower_80": 8,
+            "upper_80": 12,
+            "q_50": 10,
+        }
+        for d in range(1, days + 1)
+    ]
+    actuals = [
+        {"series_id": series_id, "observed_at": f"2026-07-{d + 1:02d}", "value": actual(d)}
+        for d in range(1, days + 1)
+    ]
+    return forecasts, actuals
+
+
 def run_cli(*args: str) -> Any:
     out = io.StringIO()
     with contextlib.redirect_stdout(out), contextlib.redirect_stderr(io.StringIO()):
@@ -364,23 +388,7 @@ def test_openapi_is_served_and_interactive_docs_are_off(fleet: Fleet) -> None:
 def test_every_endpoint_answers_on_each_store(engine: Engine, config: Config) -> None:
     """SQLite and, when configured, PostgreSQL: the same requests, the same answers."""
     config = make_config(config.store.url, api={"token": TOKEN})
-    forecasts = [
-        {
-            "series_id": "pg/1",
-            "model": "m",
-            "issued_at": f"2026-07-0{d}T06:00Z",
-            "target_at": f"2026-07-0{d + 1}",
-            "point": 10,
-            "lower_80": 8,
-            "upper_80": 12,
-            "q_50": 10,
-        }
-        for d in range(1, 6)
-    ]
-    actuals = [
-        {"series_id": "pg/1", "observed_at": f"2026-07-0{d + 1}", "value": 9 + d}
-        for d in range(1, 6)
-    ]
+    forecasts, actuals = daily_rows("pg/1", 5, lambda d: 9 + d)
     with LiveServer(create_app(engine, config)) as live:
         for kind, rows in (("forecasts", forecasts), ("actuals", actuals)):
             answer = requests.post(f"{live.url}/v1/{kind}", json=rows, headers=AUTH, timeout=10)
