@@ -1,18 +1,19 @@
 """Several replicas on one store: series split into shards, each shard's cycle run by one replica.
 
 A series belongs to shard `SipHash(series key) mod shards`, the same on every replica and across
-restarts. A replica holds shards through leases in `shard_leases` (holder, expiry on the
+restarts. A replica holds shards through leases (`store.leases`: holder, expiry on the
 database's clock, fencing token): it takes its fair share (shards / live replicas) of those that
-are free or expired, with `SELECT ... FOR UPDATE SKIP LOCKED` on PostgreSQL (replicas acquiring
-at the same moment take different rows) and an atomic UPDATE inside SQLite's write lock, renews
-them while it works and releases what exceeds its share afterwards. A shard is cycled once per
-scheduled slot: `cycle_now` records the slot its last cycle finished. While a shard cycle runs,
-every write transaction of that thread first checks that the leases still carry our tokens
-(locking those rows on PostgreSQL, so no one can take them until it commits): a replica that
-stalled past its lease and lost a shard has its next write refused, never applied on top of the
-new holder's. A replica killed mid-cycle simply stops renewing; when its leases expire another
-replica takes the shards and, their slot not being marked done, cycles them. Each stage commits
-in its own transactions, so the new holder finishes the work and redoes none of it.
+are free or expired, renews them while it works and releases what exceeds its share afterwards.
+A shard is cycled once per scheduled slot: its lease row records the slot its last cycle
+finished. Stages that look at the whole fleet at once (false-discovery control across all
+series) can run as `fleet_stages`, once per slot, by whichever replica takes the FLEET lease
+after every shard has finished that slot. While a shard cycle runs, every write transaction of
+its thread first checks that our leases still carry our tokens, locking those rows on
+PostgreSQL until commit: a replica that stalled past its lease and lost a shard has its next
+write refused, never applied on top of the new holder's. A replica killed mid-cycle simply
+stops renewing; when its leases expire another replica takes the shards and, their slot not
+being marked done, cycles them. Each stage commits in its own transactions, so the new holder
+finishes the work and redoes none of what was committed.
 """
 
 from __future__ import annotations
@@ -24,7 +25,7 @@ import socket
 import threading
 import time
 import uuid
-from collections.abc import Collection, Iterator
+from collections.abc import Callable, Collection, Iterator
 from contextlib import contextmanager
 from contextvars import ContextVar
 from dataclasses import dataclass
@@ -34,11 +35,11 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 import pandas as pd
 from pydantic import BaseModel, ConfigDict, Field
-from sqlalchemy import Connection, Engine, event, text
+from sqlalchemy import Connection, Engine, event
 
-from aftercast.errors import AftercastError
 from aftercast.logs import log_event
-from aftercast.store.bulk import is_postgres, read_frame
+from aftercast.store import leases
+from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
 
 if TYPE_CHECKING:
@@ -89,16 +90,6 @@ def series_in_shards(connection: Connection, shards: Collection[int], total: int
     return frame["id"].to_numpy(np.int64)[mask]
 
 
-def database_now(connection: Connection) -> int:
-    """The database server's clock: every replica compares lease expiries against one clock."""
-    sql = (
-        "SELECT CAST(FLOOR(EXTRACT(EPOCH FROM clock_timestamp())) AS BIGINT)"
-        if is_postgres(connection)
-        else "SELECT CAST(strftime('%s', 'now') AS INTEGER)"
-    )
-    return int(connection.execute(text(sql)).scalar_one())
-
-
 def latest_slot(schedule: Schedule, clock: float) -> int:
     """The latest scheduled cycle time at or before `clock`, identical on every replica.
 
@@ -138,11 +129,7 @@ def _check_fence(connection: Connection) -> None:
     fence = _FENCE.get()
     if fence is None or not connection.info.get("write"):
         return
-    lock = " FOR NO KEY UPDATE" if is_postgres(connection) else ""
-    rows = connection.execute(
-        text(f"SELECT shard, token FROM shard_leases WHERE holder = :h{lock}"), {"h": fence.holder}
-    ).all()
-    stored = {int(shard): int(token) for shard, token in rows}
+    stored = leases.held_by(connection, fence.holder, lock=True)
     lost = sorted(s for s, t in fence.tokens.items() if stored.get(s) != t)
     if lost:
         raise LeaseLost(f"replica {fence.holder} no longer holds shards {lost}")
@@ -166,6 +153,7 @@ class Coordinator:
         self.engine, self.settings = engine, settings
         self.name = name or replica_name()
         self.held: dict[int, int] = {}  # shard -> fencing token
+        self.fleet_token: int | None = None
         self._lock = threading.Lock()
         self._joined = False
         _install_fence(engine)
@@ -174,121 +162,51 @@ class Coordinator:
     def shards(self) -> int:
         return self.settings.shards
 
-    def _ensure_shards(self, connection: Connection, now: int) -> None:
-        rows = read_frame(connection, "SELECT shard, shards, holder, expires_at FROM shard_leases")
-        other = rows[rows["shards"] != self.shards] if len(rows) else rows
-        if len(other):
-            busy = other[other["holder"].notna() & (other["expires_at"] >= now)]
-            if len(busy):
-                raise AftercastError(
-                    f"config key coordination.shards: this replica has {self.shards}, replica "
-                    f"{busy['holder'].iloc[0]} works with {int(busy['shards'].iloc[0])}; "
-                    "give every replica the same value"
-                )
-            connection.execute(
-                text("DELETE FROM shard_leases WHERE shard >= :n"), {"n": self.shards}
-            )
-            connection.execute(
-                text(
-                    "UPDATE shard_leases SET shards = :n, holder = NULL, expires_at = 0, "
-                    "cycle_now = NULL"
-                ),
-                {"n": self.shards},
-            )
-        for shard in range(self.shards):
-            connection.execute(
-                text(
-                    "INSERT INTO shard_leases (shard, shards, token, expires_at) "
-                    "VALUES (:s, :n, 0, 0) ON CONFLICT (shard) DO NOTHING"
-                ),
-                {"s": shard, "n": self.shards},
-            )
+    def _sync(self, connection: Connection) -> dict[int, int]:
+        tokens = leases.held_by(connection, self.name)
+        self.fleet_token = tokens.pop(leases.FLEET, None)
+        self.held = tokens
+        return dict(tokens)
 
-    def _heartbeat(self, connection: Connection, now: int) -> None:
-        until = now + self.settings.lease_seconds
-        connection.execute(
-            text(
-                "INSERT INTO replicas (name, started_at, seen_at, expires_at) "
-                "VALUES (:name, :now, :now, :until) ON CONFLICT (name) DO UPDATE "
-                "SET seen_at = :now, expires_at = :until"
-            ),
-            {"name": self.name, "now": now, "until": until},
-        )
-        connection.execute(
-            text("UPDATE shard_leases SET expires_at = :until WHERE holder = :h"),
-            {"until": until, "h": self.name},
-        )
+    def _renewed(self, connection: Connection) -> int:
+        now = leases.database_now(connection)
+        leases.heartbeat(connection, self.name, now, now + self.settings.lease_seconds)
+        self._sync(connection)
+        return now
 
-    def _read_held(self, connection: Connection) -> None:
-        rows = connection.execute(
-            text("SELECT shard, token FROM shard_leases WHERE holder = :h AND shards = :n"),
-            {"h": self.name, "n": self.shards},
-        ).all()
-        self.held = {int(shard): int(token) for shard, token in rows}
-
-    def fair_share(self, connection: Connection, now: int) -> int:
-        live = connection.execute(
-            text("SELECT COUNT(*) FROM replicas WHERE expires_at > :now"), {"now": now}
-        ).scalar_one()
-        return math.ceil(self.shards / max(int(live), 1))
+    def _fair_share(self, connection: Connection, now: int) -> int:
+        return math.ceil(self.shards / max(leases.live_members(connection, now), 1))
 
     def acquire(self) -> dict[int, int]:
         """Renew what we hold and take free or expired shards up to our fair share."""
         with self._lock, write(self.engine) as connection:
-            now = database_now(connection)
             if not self._joined:
-                self._ensure_shards(connection, now)
-            self._heartbeat(connection, now)
-            self._read_held(connection)
-            want = self.fair_share(connection, now) - len(self.held)
+                leases.ensure_shards(connection, self.shards, leases.database_now(connection))
+                self._joined = True
+            now = self._renewed(connection)
+            want = self._fair_share(connection, now) - len(self.held)
             if want > 0:
-                self._take(connection, now, want)
-                self._read_held(connection)
-            self._joined = True
-            return dict(self.held)
-
-    def _take(self, connection: Connection, now: int, want: int) -> None:
-        free = (
-            "SELECT shard FROM shard_leases WHERE shards = :n "
-            "AND (holder IS NULL OR expires_at < :now) ORDER BY shard LIMIT :want"
-        )
-        values = "holder = :h, acquired_at = :now, expires_at = :until"
-        if is_postgres(connection):
-            sql = (
-                f"WITH free AS ({free} FOR UPDATE SKIP LOCKED) UPDATE shard_leases l "
-                f"SET token = l.token + 1, {values} FROM free WHERE l.shard = free.shard"
-            )
-        else:  # the write transaction holds SQLite's lock: this UPDATE is atomic
-            sql = f"UPDATE shard_leases SET token = token + 1, {values} WHERE shard IN ({free})"
-        params = {"n": self.shards, "now": now, "want": want, "h": self.name}
-        connection.execute(text(sql), {**params, "until": now + self.settings.lease_seconds})
+                until = now + self.settings.lease_seconds
+                leases.take_free(connection, self.name, now, until, want)
+            return self._sync(connection)
 
     def renew(self) -> dict[int, int]:
         """Extend our leases; shards someone else took are dropped from `held`."""
         with self._lock, write(self.engine) as connection:
-            self._heartbeat(connection, database_now(connection))
-            self._read_held(connection)
+            self._renewed(connection)
             return dict(self.held)
 
     def release(self, shards: Collection[int] | None = None) -> None:
         """Give shards back at once (all by default), so others need not wait for expiry."""
         with self._lock, write(self.engine) as connection:
-            chosen = list(self.held if shards is None else shards)
-            if chosen:
-                marks = ", ".join(str(int(s)) for s in chosen)
-                connection.execute(
-                    text(
-                        "UPDATE shard_leases SET holder = NULL, expires_at = 0 "
-                        f"WHERE holder = :h AND shard IN ({marks})"
-                    ),
-                    {"h": self.name},
-                )
-            self._read_held(connection)
+            everything = [*self.held, leases.FLEET]
+            leases.release(connection, self.name, list(everything if shards is None else shards))
+            self._sync(connection)
 
     def rebalance(self) -> None:
         """Release the shards beyond our fair share (the highest numbers), after a cycle."""
         with self.engine.connect() as connection:
-            fair = self.fair_share(connection, database_now(connection))
+            fair = self._fair_share(connection, leases.database_now(connection))
         extra = sorted(self.held)[fair:]
         if extra:
             self.release(extra)
@@ -298,25 +216,42 @@ class Coordinator:
         """Release everything and leave the member list (a clean shutdown)."""
         self.release()
         with write(self.engine) as connection:
-            connection.execute(text("DELETE FROM replicas WHERE name = :n"), {"n": self.name})
+            leases.leave(connection, self.name)
 
     def due(self, slot: int) -> list[int]:
         """Held shards whose last finished cycle is older than `slot`."""
-        if not self.held:
-            return []
         with self.engine.connect() as connection:
-            rows = connection.execute(
-                text("SELECT shard, cycle_now FROM shard_leases WHERE holder = :h"),
-                {"h": self.name},
-            ).all()
-        return sorted(
-            int(s) for s, done in rows if int(s) in self.held and (done is None or done < slot)
-        )
+            marks = leases.cycle_marks(connection)
+        mine = marks[(marks["holder"] == self.name) & marks["shard"].isin(list(self.held))]
+        late = mine["cycle_now"].isna() | (mine["cycle_now"] < slot)
+        return sorted(int(s) for s in mine.loc[late, "shard"])
+
+    def fleet_turn(self, slot: int) -> bool:
+        """Whether this replica runs the fleet-wide stages for `slot` (once all shards did theirs).
+
+        One replica per slot gets True: the one that takes the FLEET lease first.
+        """
+        with self._lock, write(self.engine) as connection:
+            now = leases.database_now(connection)
+            marks = leases.cycle_marks(connection).set_index("shard")["cycle_now"]
+            if (marks.fillna(-1) < slot).drop(leases.FLEET).any() or marks[leases.FLEET] >= slot:
+                return False
+            if self.fleet_token is None:
+                until = now + self.settings.lease_seconds
+                leases.take_free(connection, self.name, now, until, 1, fleet=True)
+                self._sync(connection)
+            return self.fleet_token is not None
+
+    def _tokens(self, shards: Collection[int]) -> dict[int, int]:
+        tokens = dict(self.held)
+        if self.fleet_token is not None:
+            tokens[leases.FLEET] = self.fleet_token
+        return {s: tokens[s] for s in shards}
 
     @contextmanager
     def fenced(self, shards: Collection[int]) -> Iterator[None]:
         """Fence this thread's writes on `shards` and keep their leases renewed meanwhile."""
-        tokens = {s: self.held[s] for s in shards}
+        tokens = self._tokens(shards)
         stop = threading.Event()
         renewer = threading.Thread(target=self._keep_renewed, args=(stop,), daemon=True)
         reset = _FENCE.set(_Fence(self.name, tokens))
@@ -337,66 +272,69 @@ class Coordinator:
 
     def begin_cycle(self, shards: list[int], slot: int) -> None:
         """Log that we start cycling `shards` for `slot` (call it under `fenced`)."""
+        tokens = self._tokens(shards)
         with write(self.engine) as connection:
-            now = database_now(connection)
-            for shard in shards:
-                connection.execute(
-                    text(
-                        "INSERT INTO shard_cycles (shard, now, holder, token, started_at) "
-                        "VALUES (:s, :slot, :h, :t, :now)"
-                    ),
-                    {"s": shard, "slot": slot, "h": self.name, "t": self.held[shard], "now": now},
-                )
+            now = leases.database_now(connection)
+            leases.record_start(connection, self.name, tokens, slot, now)
 
-    def finish_cycle(self, shards: list[int], slot: int, cycle_id: int) -> None:
+    def finish_cycle(self, shards: list[int], slot: int, cycle_id: int | None) -> None:
         """Mark `slot` done for `shards`, in one fenced transaction with the log entries."""
-        marks = ", ".join(str(s) for s in shards)
         with write(self.engine) as connection:
-            params = {"slot": slot, "h": self.name, "c": cycle_id, "now": database_now(connection)}
-            connection.execute(
-                text(
-                    f"UPDATE shard_leases SET cycle_now = :slot WHERE holder = :h "
-                    f"AND shard IN ({marks})"
-                ),
-                params,
-            )
-            connection.execute(
-                text(
-                    "UPDATE shard_cycles SET finished_at = :now, cycle_id = :c WHERE holder = :h "
-                    f"AND now = :slot AND finished_at IS NULL AND shard IN ({marks})"
-                ),
-                params,
-            )
+            now = leases.database_now(connection)
+            leases.record_finish(connection, self.name, shards, slot, cycle_id, now)
+
+
+FleetStages = Callable[["Engine", "Config", int], Any]
 
 
 def coordinated_cycle(
-    engine: Engine, config: Config, coordinator: Coordinator, now: int | None = None
+    engine: Engine,
+    config: Config,
+    coordinator: Coordinator,
+    now: int | None = None,
+    fleet_stages: FleetStages | None = None,
 ) -> CycleReport | None:
-    """Run the cycle for the shards this replica holds that are due at slot `now`.
+    """Cycle the shards this replica holds that are due at slot `now`, then maybe the fleet.
 
-    `now` defaults to the latest slot of `schedule.cycle`; None is returned when nothing was due
-    or a lease was lost mid-cycle (the new holder finishes that work).
+    `now` defaults to the latest slot of `schedule.cycle`. `fleet_stages(engine, config, now)`,
+    when given, runs once per slot on one replica, after every shard has finished that slot.
+    Returns the shard cycle's report, or None when nothing was due or a lease was lost
+    mid-cycle (the new holder finishes that work).
     """
-    from aftercast.cycle import run_cycle  # the cycle imports the config, which imports us
-
     coordinator.acquire()
     slot = latest_slot(config.schedule.cycle, time.time()) if now is None else now
-    due = coordinator.due(slot)
     report = None
-    if due:
-        try:
-            with coordinator.fenced(due):
-                coordinator.begin_cycle(due, slot)
-                series = None
-                if len(due) < coordinator.shards:
-                    with engine.connect() as connection:
-                        series = series_in_shards(connection, due, coordinator.shards)
-                report = run_cycle(engine, config, slot, series_ids=series)
-                coordinator.finish_cycle(due, slot, report.cycle_id)
-        except LeaseLost as exc:
-            log_event(log, "shard lease lost", level=logging.WARNING, detail=str(exc))
-            coordinator.renew()
-            return None
-        log_event(log, "shards cycled", replica=coordinator.name, shards=due, now=slot)
+    try:
+        report = _cycle_shards(engine, config, coordinator, slot)
+        if fleet_stages is not None and coordinator.fleet_turn(slot):
+            with coordinator.fenced([leases.FLEET]):
+                coordinator.begin_cycle([leases.FLEET], slot)
+                fleet_stages(engine, config, slot)
+                coordinator.finish_cycle([leases.FLEET], slot, None)
+            coordinator.release([leases.FLEET])
+    except LeaseLost as exc:
+        log_event(log, "shard lease lost", level=logging.WARNING, detail=str(exc))
+        coordinator.renew()
+        return None
     coordinator.rebalance()
+    return report
+
+
+def _cycle_shards(
+    engine: Engine, config: Config, coordinator: Coordinator, slot: int
+) -> CycleReport | None:
+    from aftercast.cycle import run_cycle  # the cycle imports the config, which imports us
+
+    due = coordinator.due(slot)
+    if not due:
+        return None
+    with coordinator.fenced(due):
+        coordinator.begin_cycle(due, slot)
+        series = None
+        if len(due) < coordinator.shards:
+            with engine.connect() as connection:
+                series = series_in_shards(connection, due, coordinator.shards)
+        report = run_cycle(engine, config, slot, series_ids=series)
+        coordinator.finish_cycle(due, slot, report.cycle_id)
+    log_event(log, "shards cycled", replica=coordinator.name, shards=due, now=slot)
     return report
