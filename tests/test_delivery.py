@@ -109,9 +109,9 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     assert row["status"] == "dead" and "gave up after 3 attempts" in row["detail"]
     path = tmp_path / "c.yaml"
     path.write_text(f"store:\n  url: {sqlite_url}\n")
-    assert main(["--config", str(path), "alerts"]) == 0
+    assert main(["--config", str(path), "alerts", "notifications"]) == 0
     out = capsys.readouterr().out
-    assert "notification dead after 3 attempt(s)" in out and "1 dead" in out
+    assert "dead" in out and "gave up after 3 attempts" in out and "1 dead" in out
     assert main(["--config", str(path), "alerts", "notifications", "--json"]) == 0
     listed = json.loads(capsys.readouterr().out)
     assert [(n["status"], n["attempts"]) for n in listed] == [("dead", 3)]
@@ -145,7 +145,7 @@ def test_dead_smtp_server_is_retried_and_its_failure_shows(
     assert "connection refused" in report.failures[0]
     path = tmp_path / "c.yaml"
     path.write_text(f"store:\n  url: {sqlite_url}\n")
-    assert main(["--config", str(path), "alerts"]) == 0
+    assert main(["--config", str(path), "alerts", "notifications"]) == 0
     out = capsys.readouterr().out
     assert "1 retrying" in out and "connection refused" in out
 
@@ -264,7 +264,11 @@ def test_secrets_never_reach_logs_output_or_the_store(
             deliver_due(engine, config)
             deliver_due(engine, config, now=int(time.time()) + DAY)
             assert len(server.requests) == 2  # refused (503, echoing the token), then taken
-            for args in (["alerts"], ["alerts", "--json"], ["alerts", "notifications"]):
+            for args in (
+                ["alerts", "notifications"],
+                ["alerts", "notifications", "--json", "--delivered"],
+                ["alerts", "history", "1"],
+            ):
                 assert main(["--config", str(path), *args]) == 0
             assert main(["--config", str(path), "rules", "check", "--json"]) == 0
     finally:

@@ -20,7 +20,7 @@ from aftercast.alerts.stage import apply_findings
 from aftercast.config import Config
 from aftercast.notify.base import DeliveryOutcome
 from aftercast.notify.deliver import deliver_due
-from aftercast.notify.outbox import claim_due, finish
+from aftercast.notify.outbox import claim_due, finish, outbox_counts
 from aftercast.store.db import make_engine, migrate, write
 from tests.conftest import make_config
 from tests.servers import HttpRecorder
@@ -145,3 +145,6 @@ def test_concurrent_deliverers_send_each_notification_once(store_url: str) -> No
         sent = Counter(r.headers["webhook-id"] for r in server.requests)
     assert len(sent) == 12 and set(sent.values()) == {1}
     assert set(outbox(engine)["status"]) == {"delivered"}
+    with engine.connect() as connection:
+        counts = outbox_counts(connection)
+    assert counts == {"pending": 0, "retrying": 0, "delivered": 12, "dead": 0}

@@ -145,12 +145,16 @@ def cmd_alerts(args: argparse.Namespace) -> int:
         print(_alert_line(row))
     if not rows:
         print("no open alerts" if not args.all else "no alerts")
-    print(
+    failing = counts[DEAD] or counts["retrying"]
+    print(_counts_line(counts) + ("; see `aftercast alerts notifications`" if failing else ""))
+    return 0
+
+
+def _counts_line(counts: dict[str, int]) -> str:
+    return (
         f"notifications: {counts[PENDING]} pending ({counts['retrying']} retrying), "
         f"{counts['delivered']} delivered, {counts[DEAD]} dead"
-        + ("; see `aftercast alerts notifications`" if counts[DEAD] or counts["retrying"] else "")
     )
-    return 0
 
 
 def cmd_history(args: argparse.Namespace) -> int:
@@ -175,6 +179,7 @@ def cmd_notifications(args: argparse.Namespace) -> int:
     statuses = (PENDING, DEAD, "delivered") if args.delivered else (PENDING, DEAD)
     with engine.connect() as connection:
         frame = notification_listing(connection, statuses, limit=200)
+        counts = outbox_counts(connection)
     for column in ("created_at", "due_at", "last_attempt_at", "delivered_at"):
         frame[column] = [to_iso(v) for v in frame[column]]
     rows = frame.astype(object).where(frame.notna(), None).to_dict("records")
@@ -189,6 +194,7 @@ def cmd_notifications(args: argparse.Namespace) -> int:
         )
     if not rows:
         print("no notifications waiting or dead")
+    print(_counts_line(counts))
     return 0
 
 

@@ -21,7 +21,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, Engine, func, select, update
+from sqlalchemy import Connection, Engine, case, func, select, update
 
 from aftercast.alerts.config import DeliveryConfig
 from aftercast.alerts.routing import Digest
@@ -187,14 +187,13 @@ def release(engine: Engine, claims: Sequence[Claim], worker: str) -> None:
 def outbox_counts(connection: Connection) -> dict[str, int]:
     """Notifications by status, with `retrying` = pending ones that have failed at least once."""
     t = notification_outbox
+    tried = func.sum(case((t.c.attempts > 0, 1), else_=0))
     counts = {PENDING: 0, "retrying": 0, DELIVERED: 0, DEAD: 0}
-    query = select(t.c.status, t.c.attempts > 0, func.count()).group_by(
-        t.c.status, t.c.attempts > 0
-    )
-    for status, tried, count in connection.execute(query):
-        counts[str(status)] = counts.get(str(status), 0) + int(count)
-        if status == PENDING and tried:
-            counts["retrying"] += int(count)
+    query = select(t.c.status, func.count(), tried).group_by(t.c.status)
+    for status, count, failed in connection.execute(query):
+        counts[str(status)] = int(count)
+        if status == PENDING:
+            counts["retrying"] = int(failed or 0)
     return counts
 
 
