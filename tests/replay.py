@@ -37,7 +37,7 @@ SPEC = ScenarioSpec(
     horizons=3,
     models=("shop-planner",),
     history_days=10,
-    degraded={"shop-001/rye": ("coverage_collapse", 2), "shop-002/rye": ("level_shift", 3)},
+    degraded={"shop-001/rye": ("coverage_collapse", 2), "shop-002/rye": ("stall", 2)},
     seed=11,
 )
 CYCLE_HOUR = "T12:00:00Z"  # after the 06:00 forecasts and the midnight actuals of the day

@@ -28,7 +28,12 @@ Handler = Callable[[argparse.Namespace], int]
 # function it sets as the parser default `handler`; a new command is one new module and one line.
 COMMAND_MODULES = (
     "aftercast.commands.core",
+    "aftercast.commands.status",
     "aftercast.commands.daemon",
+    "aftercast.commands.baselines",
+    "aftercast.commands.backtest",
+    "aftercast.commands.replay",
+    "aftercast.commands.alerts",  # before alert_actions, whose ack/snooze attach to `alerts`
     "aftercast.commands.alert_actions",
 )
 

@@ -19,6 +19,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from aftercast.alerts.config import Channels, DeliveryConfig, Routes, Rules
 from aftercast.coordination import CoordinationConfig
+from aftercast.detect.settings import BaselineConfig, BenchmarkConfig, DetectionConfig
 from aftercast.errors import ConfigError
 from aftercast.sources import SourceList
 from aftercast.web.settings import ApiConfig, ScheduleConfig, WebConfig
@@ -121,6 +122,9 @@ class Config(_Strict):
     routes: Routes = Field(default_factory=list)  # after `channels`: it checks their names
     delivery: DeliveryConfig = DeliveryConfig()
     rules: Rules = Field(default_factory=list)
+    benchmarks: BenchmarkConfig = BenchmarkConfig()
+    baseline: BaselineConfig = BaselineConfig()
+    detection: DetectionConfig = DetectionConfig()
     coordination: CoordinationConfig = CoordinationConfig()
 
     @field_validator("horizon_buckets")

@@ -14,11 +14,16 @@ from typing import Any
 import numpy as np
 from sqlalchemy import Engine, update
 
+from aftercast.alerts.stage import update_alerts
+from aftercast.benchmarks import make_benchmarks
 from aftercast.config import Config
+from aftercast.detect.run import detect
 from aftercast.matching import match
+from aftercast.notify.deliver import deliver_due
 from aftercast.sources import pull_all
 from aftercast.store import schema
 from aftercast.store.db import write
+from aftercast.window_store import refresh_windows
 
 
 @dataclass
@@ -27,8 +32,12 @@ class CycleReport:
     now: int
     queued: int = 0
     pairs_scored: int = 0
+    benchmarks: int = 0
+    flagged: int = 0
     seconds: float = 0.0
     stages: dict[str, float] = field(default_factory=dict)
+    alerts: dict[str, Any] = field(default_factory=dict)
+    delivery: dict[str, Any] = field(default_factory=dict)
 
     def as_json(self) -> dict[str, Any]:
         return asdict(self)
@@ -67,9 +76,29 @@ def run_cycle(
     report.stages["sources"] = time.perf_counter() - mark
 
     mark = time.perf_counter()
+    report.benchmarks = make_benchmarks(engine, config, now).forecasts
+    report.stages["benchmarks"] = time.perf_counter() - mark
+
+    mark = time.perf_counter()
     matched = match(engine, now, series_ids=series_ids)
     report.queued, report.pairs_scored = matched.queued, matched.pairs_scored
     report.stages["match"] = time.perf_counter() - mark
+
+    mark = time.perf_counter()
+    refresh_windows(engine, config, now, matched.touched)
+    report.stages["windows"] = time.perf_counter() - mark
+
+    mark = time.perf_counter()
+    report.flagged = detect(engine, config, now, report.cycle_id).flagged
+    report.stages["detect"] = time.perf_counter() - mark
+
+    mark = time.perf_counter()
+    report.alerts = update_alerts(engine, config, report.cycle_id, now).as_json()
+    report.stages["alerts"] = time.perf_counter() - mark
+
+    mark = time.perf_counter()
+    report.delivery = deliver_due(engine, config).as_json()
+    report.stages["notify"] = time.perf_counter() - mark
 
     report.seconds = time.perf_counter() - started
     _close_cycle(engine, report)

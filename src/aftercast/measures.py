@@ -88,7 +88,7 @@ def interval_score(
 
     (u - l) + (2/alpha)(l - y)[y < l] + (2/alpha)(y - u)[y > u], alpha = 1 - level/100.
 
-    >>> interval_score([5, 0, 12], [2, 2, 2], [8, 8, 8], [80, 80, 80]).tolist()
+    >>> interval_score([5, 0, 12], [2, 2, 2], [8, 8, 8], [80, 80, 80]).round(9).tolist()
     [6.0, 26.0, 46.0]
     """
     y, lo, hi, lv = _arrays(actual, lower, upper, np.broadcast_to(level, np.shape(actual)))
@@ -101,7 +101,7 @@ def interval_score(
 def pinball_loss(actual: npt.ArrayLike, quantile: npt.ArrayLike, prob: npt.ArrayLike) -> FloatArray:
     """Pinball (quantile) loss max(p(y - q), (p - 1)(y - q)), p as a fraction (Koenker, 2005).
 
-    >>> pinball_loss([10, 10], [8, 12], [0.9, 0.9]).tolist()
+    >>> pinball_loss([10, 10], [8, 12], [0.9, 0.9]).round(9).tolist()
     [1.8, 0.2]
     """
     y, q, p = _arrays(actual, quantile, np.broadcast_to(prob, np.shape(actual)))
@@ -152,3 +152,67 @@ def seasonal_scales(actuals: pd.DataFrame, queries: pd.DataFrame) -> pd.DataFram
     result["scale_abs"] = (found["cum_abs"] / found["n"]).to_numpy()
     result["scale_sq"] = (found["cum_sq"] / found["n"]).to_numpy()
     return result
+
+
+def squared_scaled_error(error: npt.ArrayLike, scale_sq: npt.ArrayLike) -> FloatArray:
+    """e^2 / s2 with s2 the in-sample mean squared seasonal difference; RMSSE = sqrt(mean).
+
+    The root mean squared scaled error of the M5 competition (Makridakis, Spiliotis and
+    Assimakopoulos, 2022, M5 accuracy competition). NaN where s2 is undefined or zero.
+
+    >>> squared_scaled_error([2.0, 1.0], [4.0, 0.0]).tolist()
+    [1.0, nan]
+    """
+    e, s = _arrays(error, scale_sq)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(s > 0, e**2 / s, np.nan)
+
+
+def _grid(
+    actual: npt.ArrayLike, quantiles: npt.ArrayLike, probs: npt.ArrayLike
+) -> tuple[FloatArray, FloatArray, FloatArray]:
+    """y as a column (n, 1), quantiles (n, K) and probabilities (K,) as fractions in (0, 1)."""
+    y = np.asarray(actual, dtype=np.float64).reshape(-1, 1)
+    q = np.atleast_2d(np.asarray(quantiles, dtype=np.float64))
+    p = np.asarray(probs, dtype=np.float64).ravel()
+    if q.shape != (y.shape[0], p.shape[0]):
+        raise ValueError(f"quantiles must be (n, K) = {(y.shape[0], p.shape[0])}, got {q.shape}")
+    if np.any((p <= 0) | (p >= 1)):
+        raise ValueError("probabilities must lie strictly between 0 and 1")
+    return y, q, p
+
+
+def crps_from_quantiles(
+    actual: npt.ArrayLike, quantiles: npt.ArrayLike, probs: npt.ArrayLike
+) -> FloatArray:
+    """CRPS estimated from K quantiles: twice the mean pinball loss over the grid.
+
+    CRPS(F, y) = 2 * integral over p in (0, 1) of the pinball loss of F^-1(p) (Gneiting and
+    Raftery, 2007, section 4.2; Laio and Tamea, 2007); on an evenly spread grid the mean is
+    the midpoint rule for that integral. `quantiles` is (n, K), `probs` (K,) as fractions.
+
+    >>> crps_from_quantiles([1.0], [[0.0, 1.0, 2.0]], [0.25, 0.5, 0.75]).tolist()
+    [0.3333333333333333]
+    """
+    y, q, p = _grid(actual, quantiles, probs)
+    diff = y - q
+    losses = np.maximum(p * diff, (p - 1.0) * diff)
+    return 2.0 * losses.mean(axis=1)
+
+
+def pit_histogram(
+    actual: npt.ArrayLike, quantiles: npt.ArrayLike, probs: npt.ArrayLike
+) -> FloatArray:
+    """Share of actuals in each bin of the probability integral transform, from quantiles.
+
+    Bin 0 holds y <= q_1, bin k holds q_k < y <= q_(k+1), bin K holds y > q_K; for a
+    calibrated forecast the shares approach p_1, p_2 - p_1, ..., 1 - p_K (Gneiting, Balabdaoui
+    and Raftery, 2007, probabilistic calibration). Returns K + 1 shares.
+
+    >>> pit_histogram([0.5, 1.5, 2.5, 3.5], np.tile([1.0, 2.0, 3.0], (4, 1)), [0.25, 0.5, 0.75])
+    array([0.25, 0.25, 0.25, 0.25])
+    """
+    y, q, p = _grid(actual, quantiles, probs)
+    order = np.argsort(p)
+    below = (y <= q[:, order]).mean(axis=0)
+    return np.diff(np.concatenate([[0.0], below, [1.0]]))

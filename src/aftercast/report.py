@@ -1,24 +1,53 @@
-"""Status rows: windows computed from the store, shaped as the CONTRACT rows, JSON or a table.
+"""Status rows: window measures shaped as the CONTRACT rows, filtered, sorted, paged.
 
-JSON rows carry `series_id, model, horizon, n, me, mae, mse, rmse, mape, smape, wape, mase,
-coverage, width, interval_score, window_start, window_end` (plus a few extra fields); every
-undefined value is null, never NaN.
+A row carries `series_id` (the series key), `model`, `horizon` (an integer, a bucket such as
+"2-7", or "all"), `n, me, mae, mse, rmse, mape, smape, wape, mase`, the objects `coverage`,
+`width` and `interval_score` keyed by level ("80"), `window_start, window_end`, and extras:
+`window, mape_excluded, rmsse, tracking_signal, crps`, `pinball` keyed by quantile ("10") and
+`pit` keyed by bin ("10-50"). Undefined values are null, never NaN. `open_status` goes
+through the series a page at a time (keyset on the key), parks each page's rows in a
+temporary table and streams them back in the chosen order, so a fleet of 100,000 series is
+never in memory at once.
 """
 
 from __future__ import annotations
 
+import json
 import math
+import re
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from fnmatch import translate
 from typing import Any
 
+import numpy as np
 import pandas as pd
-from sqlalchemy import Engine
+from sqlalchemy import BigInteger, Column, Connection, Engine, Float, MetaData, Table, Text, text
 
-from aftercast.config import WindowConfig
+from aftercast.config import Config, WindowConfig
 from aftercast.periods import to_iso
-from aftercast.store.queries import intervals_for, pairs_upto
-from aftercast.windows import DAY, aggregate, level_columns, select_window
+from aftercast.store.bulk import insert_frame, read_frame
+from aftercast.window_store import is_current, rows_for_page
+from aftercast.windows import horizon_rank, measure_columns
 
 MEASURES = ["n", "me", "mae", "mse", "rmse", "mape", "smape", "wape", "mase"]
+EXTRAS = ["mape_excluded", "rmsse", "tracking_signal", "crps"]
+NESTED = ["coverage", "width", "interval_score", "pinball", "pit"]
+# Sort keys, worst first: larger is worse, for ME and the tracking signal in absolute value,
+# for coverage the largest gap between a level's coverage and its nominal share.
+SORTS = ("key", "mae", "mse", "rmse", "mape", "smape", "wape", "mase", "rmsse", "crps", "me",
+         "tracking_signal", "coverage")
+PAGE_SERIES = 2_000
+_STATUS_TABLE = Table(
+    "tmp_status_rows",
+    MetaData(),
+    Column("sort_value", Float),
+    Column("series_key", Text),
+    Column("model", Text),
+    Column("horizon_rank", BigInteger),
+    Column("body", Text),
+)
 
 
 def _clean(value: Any) -> Any:
@@ -26,56 +55,212 @@ def _clean(value: Any) -> Any:
         return {k: _clean(v) for k, v in value.items()}
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return None
-    if hasattr(value, "item"):
+    if isinstance(value, np.generic):
         return _clean(value.item())
     return value
 
 
-def window_status(engine: Engine, window: WindowConfig, now: int) -> pd.DataFrame:
-    """Window rows for every (series, model, horizon) and (series, model, 'all') at `now`."""
-    since = now - int(window.days * DAY) if window.days is not None else None
-    with engine.connect() as connection:
-        pairs = select_window(pairs_upto(connection, now, since), window, now)
-        intervals = (
-            intervals_for(connection, pairs["forecast_id"])
-            if len(pairs)
-            else pd.DataFrame(columns=["forecast_id", "level", "hit", "width", "interval_score"])
-        )
-    if pairs.empty:
-        return pd.DataFrame()
-    rows = aggregate(pairs, intervals)
-    if window.days is not None:
-        rows["window_start"] = to_iso(since)
-        rows["window_end"] = to_iso(now)
-    else:
-        rows["window_start"] = rows["target_first"].map(to_iso)
-        rows["window_end"] = rows["target_last"].map(to_iso)
-    rows["window"] = window.name
-    order = rows["horizon"].map(lambda h: 10**9 if h == "all" else int(h))
-    return rows.assign(_o=order).sort_values(["series_id", "model", "_o"]).drop(columns="_o")
+def _iso(value: Any) -> Any:
+    return value if value is None or isinstance(value, str) else to_iso(int(value))
 
 
 def status_json(rows: pd.DataFrame) -> list[dict[str, Any]]:
-    """CONTRACT rows with nulls for undefined values."""
-    fields = [
-        "series_id",
-        "model",
-        "horizon",
-        *MEASURES,
-        "mape_excluded",
-        "window_start",
-        "window_end",
-        "window",
-    ]
-    nested = {m: level_columns(rows, m) for m in ("coverage", "width", "interval_score")}
+    """CONTRACT rows from window rows whose `series_id` is the series key, nulls for NaN.
+
+    Accepts the frames of `window_status` (and of `contract_frame`); extra columns are left
+    out, missing extras are skipped.
+    """
+    if rows.empty:
+        return []
+    fields = ["series_id", "model", "horizon", *MEASURES, "window_start", "window_end"]
+    fields += [c for c in ["window", *EXTRAS] if c in rows.columns]
+    nested = {m: measure_columns(rows, m) for m in NESTED}
+    plain = rows[fields].astype(object).where(rows[fields].notna(), None)
     out = []
-    for record in rows.to_dict("records"):
-        row = {k: _clean(record[k]) for k in fields}
-        row["horizon"] = record["horizon"] if record["horizon"] == "all" else int(record["horizon"])
-        row["n"] = int(record["n"])
+    for record, index in zip(plain.to_dict("records"), rows.index, strict=True):
+        row = {k: _clean(v) for k, v in record.items()}
+        horizon = row["horizon"]
+        row["horizon"] = horizon if isinstance(horizon, str) else int(horizon)
+        row["n"] = int(row["n"])
+        if row.get("mape_excluded") is not None:
+            row["mape_excluded"] = int(row["mape_excluded"])
+        row["window_start"], row["window_end"] = _iso(row["window_start"]), _iso(row["window_end"])
         for measure, columns in nested.items():
-            row[measure] = {
-                lv: _clean(record[c]) for lv, c in columns.items() if _clean(record[c]) is not None
-            }
+            values = {name: _clean(rows.at[index, c]) for name, c in columns.items()}
+            if measure in ("coverage", "width", "interval_score") or values:
+                row[measure] = {k: v for k, v in values.items() if v is not None}
         out.append(row)
     return out
+
+
+def contract_frame(rows: pd.DataFrame) -> pd.DataFrame:
+    """Window rows of `window_store` with the series key as `series_id` (integer ids dropped)."""
+    if rows.empty:
+        return rows
+    named = rows.drop(columns=["series_id", "model_id"]).rename(columns={"series": "series_id"})
+    for column in ("window_start", "window_end"):
+        named[column] = named[column].map(_iso)
+    return named
+
+
+def window_status(
+    engine: Engine, window: WindowConfig, now: int, buckets: Sequence[str] = ()
+) -> pd.DataFrame:
+    """Window rows of every series at `now`, series key in `series_id` (for pages and the demo)."""
+    frames = []
+    with engine.connect() as connection:
+        stored = is_current(connection, window, now)
+        for page in _series_pages(connection, StatusQuery(window, now), PAGE_SERIES):
+            rows = rows_for_page(connection, list(buckets), window, now, page, stored)
+            if len(rows):
+                frames.append(contract_frame(rows))
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
+
+
+@dataclass(frozen=True)
+class StatusQuery:
+    """Which rows `status` shows and in what order (see SORTS); None means no filter."""
+
+    window: WindowConfig
+    now: int
+    buckets: tuple[str, ...] = ()
+    sort: str = "key"
+    series: str | None = None  # shell pattern on the series key: 'shop-01*/rye'
+    model: str | None = None
+    horizon: str | None = None  # '3', '2-7' or 'all'
+    labels: tuple[tuple[str, str], ...] = ()
+    limit: int | None = None
+
+    @classmethod
+    def from_config(cls, config: Config, window: WindowConfig, now: int, **options: Any) -> Any:
+        return cls(window, now, tuple(config.horizon_buckets), **options)
+
+
+@dataclass
+class StatusResult:
+    """How many rows matched, the level, quantile and bin names seen, and the rows in order."""
+
+    total: int
+    names: dict[str, list[str]] = field(default_factory=dict)
+    rows: Iterator[dict[str, Any]] = field(default_factory=lambda: iter(()))
+
+
+def _series_pages(
+    connection: Connection, query: StatusQuery, size: int
+) -> Iterator[pd.DataFrame]:
+    """Pages of (id, key) of the series matching the pattern and labels, in key order."""
+    pattern = re.compile(translate(query.series)) if query.series else None
+    after = ""
+    while True:
+        page = read_frame(
+            connection,
+            "SELECT id, key, labels FROM series WHERE key > :after ORDER BY key LIMIT :n",
+            {"after": after, "n": size},
+        )
+        if page.empty:
+            return
+        after = str(page["key"].iloc[-1])
+        keep = np.ones(len(page), dtype=bool)
+        if pattern is not None:
+            keep &= page["key"].str.match(pattern).to_numpy(bool)
+        if query.labels:
+            labels = pd.DataFrame([json.loads(t) for t in page["labels"]], index=page.index)
+            for name, value in query.labels:
+                column = labels[name] if name in labels else pd.Series(None, index=page.index)
+                keep &= (column == value).to_numpy(bool)
+        if keep.any():
+            yield page.loc[keep, ["id", "key"]]
+
+
+def _keep(rows: pd.DataFrame, query: StatusQuery) -> pd.DataFrame:
+    keep = np.ones(len(rows), dtype=bool)
+    if query.model is not None:
+        keep &= (rows["model"] == query.model).to_numpy(bool)
+    if query.horizon is not None:
+        keep &= (rows["horizon"].astype(str) == query.horizon).to_numpy(bool)
+    return rows[keep]
+
+
+def sort_values(rows: pd.DataFrame, sort: str) -> np.ndarray:
+    """The value rows are ordered by, descending (worst first); NaN sorts last."""
+    if sort == "key":
+        return np.full(len(rows), np.nan)
+    if sort == "coverage":
+        gaps = [
+            (rows[column] - float(level) / 100.0).abs()
+            for level, column in measure_columns(rows, "coverage").items()
+        ]
+        if not gaps:
+            return np.full(len(rows), np.nan)
+        return pd.concat(gaps, axis=1).max(axis=1, skipna=True).to_numpy(np.float64)
+    if sort not in rows.columns:
+        return np.full(len(rows), np.nan)
+    values = rows[sort].to_numpy(np.float64)
+    return np.abs(values) if sort in ("me", "tracking_signal") else values
+
+
+def _park(connection: Connection, rows: pd.DataFrame, query: StatusQuery) -> dict[str, set[str]]:
+    """Insert a page's rows into the temporary table; returns the nested names it used."""
+    named = contract_frame(rows)
+    records = status_json(named)
+    frame = pd.DataFrame(
+        {
+            "sort_value": sort_values(rows, query.sort),
+            "series_key": named["series_id"].to_numpy(),
+            "model": named["model"].to_numpy(),
+            "horizon_rank": horizon_rank(named["horizon"]).to_numpy(),
+            "body": [json.dumps(r, separators=(",", ":")) for r in records],
+        }
+    )
+    insert_frame(connection, _STATUS_TABLE, frame)
+    return {m: {name for r in records for name in r.get(m, {})} for m in NESTED}
+
+
+def _create_parking(connection: Connection) -> None:
+    columns = "sort_value DOUBLE PRECISION, series_key TEXT, model TEXT, horizon_rank BIGINT, "
+    connection.execute(text(f"CREATE TEMP TABLE IF NOT EXISTS {_STATUS_TABLE.name} "
+                            f"({columns}body TEXT)"))
+    connection.execute(text(f"DELETE FROM {_STATUS_TABLE.name}"))
+
+
+def _stream(connection: Connection, limit: int | None) -> Iterator[dict[str, Any]]:
+    sql = (
+        f"SELECT body FROM {_STATUS_TABLE.name} ORDER BY (sort_value IS NULL), sort_value DESC, "
+        "series_key, model, horizon_rank"
+    )
+    if limit is not None:
+        sql += f" LIMIT {int(limit)}"
+    result = connection.execution_options(stream_results=True).execute(text(sql))
+    for batch in result.partitions(1_000):
+        for (body,) in batch:
+            yield json.loads(body)
+
+
+def _name_order(name: str) -> tuple[float, str]:
+    head = name.split("-", 1)[0]
+    return (float(head) if head.replace(".", "", 1).isdigit() else math.inf, name)
+
+
+@contextmanager
+def open_status(
+    engine: Engine, query: StatusQuery, page_series: int = PAGE_SERIES
+) -> Iterator[StatusResult]:
+    """Status rows for `query`, streamed in order while the context is open."""
+    if query.sort not in SORTS:
+        raise ValueError(f"sort must be one of {', '.join(SORTS)}")
+    with engine.connect() as connection:
+        _create_parking(connection)
+        stored = is_current(connection, query.window, query.now)
+        total = 0
+        names: dict[str, set[str]] = {m: set() for m in NESTED}
+        for page in _series_pages(connection, query, page_series):
+            rows = rows_for_page(
+                connection, list(query.buckets), query.window, query.now, page, stored
+            )
+            rows = _keep(rows, query) if len(rows) else rows
+            if len(rows):
+                total += len(rows)
+                for measure, seen in _park(connection, rows, query).items():
+                    names[measure] |= seen
+        ordered = {m: sorted(v, key=_name_order) for m, v in names.items()}
+        yield StatusResult(total, ordered, _stream(connection, query.limit))

@@ -1,4 +1,4 @@
-"""Core commands: init, ingest, cycle, status, scores export, demo.
+"""Core commands: init, ingest, cycle, scores export, demo.
 
 Handlers are thin: load the config, open the store, call the stage functions.
 """
@@ -11,7 +11,6 @@ from typing import Any
 from importlib import resources
 from pathlib import Path
 
-from rich.console import Console
 from sqlalchemy import Engine
 
 from aftercast.cli import EXIT_UNREADABLE, print_json
@@ -20,7 +19,6 @@ from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, InputFileError
 from aftercast.ingest import ingest_path
 from aftercast.periods import parse_instant
-from aftercast.report import status_json, window_status
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.store.queries import iter_pair_export
 
@@ -129,70 +127,6 @@ def cmd_cycle(args: argparse.Namespace) -> int:
     return 0
 
 
-def _window(config: Config, name: str | None):  # noqa: ANN202 - WindowConfig
-    windows = config.all_windows()
-    if name is None:
-        return windows[0]
-    for window in windows:
-        if window.name == name:
-            return window
-    raise AftercastError(
-        f"--window {name!r}: no such window; configured: " + ", ".join(w.name for w in windows)
-    )
-
-
-def cmd_status(args: argparse.Namespace) -> int:
-    config = load_config(args.config)
-    engine = open_store(config)
-    import time
-
-    now = _now(args.now) or int(time.time())
-    rows = window_status(engine, _window(config, args.window), now)
-    records = status_json(rows) if len(rows) else []
-    if args.json:
-        print_json(records)
-        return 0
-    print_status_table(records)
-    return 0
-
-
-def print_status_table(records: list[dict[str, object]]) -> None:
-    from rich.table import Table
-
-    table = Table(title="aftercast status", show_lines=False)
-    levels = sorted({lv for r in records for lv in r["coverage"]}, key=float)  # type: ignore[union-attr]
-    for column in [
-        "series",
-        "model",
-        "h",
-        "n",
-        "MAE",
-        "RMSE",
-        "MAPE %",
-        "MASE",
-        *[f"cov {lv}%" for lv in levels],
-    ]:
-        table.add_column(column, justify="left" if column in ("series", "model") else "right")
-
-    def fmt(value: object, digits: int = 2) -> str:
-        return "-" if value is None else f"{value:.{digits}f}"  # type: ignore[str-format]
-
-    for r in records:
-        coverage = r["coverage"]
-        table.add_row(
-            str(r["series_id"]),
-            str(r["model"]),
-            str(r["horizon"]),
-            str(r["n"]),
-            fmt(r["mae"]),
-            fmt(r["rmse"]),
-            fmt(r["mape"], 1),
-            fmt(r["mase"]),
-            *[fmt(coverage.get(lv), 2) for lv in levels],
-        )  # type: ignore[union-attr]
-    Console().print(table)
-
-
 def cmd_scores(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     engine = open_store(config)
@@ -239,12 +173,6 @@ def register(commands: Any) -> None:
     cycle.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
     cycle.add_argument("--json", action="store_true", help="print the cycle report as JSON")
     cycle.set_defaults(handler=cmd_cycle)
-
-    status = commands.add_parser("status", help="window measures per series, model and horizon")
-    status.add_argument("--json", action="store_true", help="print a JSON array of rows")
-    status.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
-    status.add_argument("--window", help="named window (default: the first configured)")
-    status.set_defaults(handler=cmd_status)
 
     scores = commands.add_parser("scores", help="matched pairs with their per-pair measures")
     scores_commands = scores.add_subparsers(dest="scores_command", required=True)

@@ -1,0 +1,248 @@
+"""The benchmark stage: aftercast's own forecasts at every new issue time of a production forecast.
+
+Runs before matching. For each series with newly queued forecasts it finds the production
+forecasts issued since the series' latest known issue period (an index range on
+(series, issue_period), never a scan of the forecasts table), keeps `forecast_activity` current
+(first and last issue per series and model, which baselines and the stalled-forecast check
+read), and makes the configured benchmark forecasts for the same issue times and targets from
+the actuals known then (`benchmark_methods`; optionally ETS). They are stored as ordinary
+forecasts under the reserved names `benchmark:<method>` and queued, so matching pairs and scores
+them like any model's. Forecasts that already have their benchmark are skipped, so the stage is
+incremental and idempotent. Issue times older than a series' latest already-seen issue period
+(a late backfill) get no benchmark.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import Connection, Engine
+
+from aftercast import benchmark_methods
+from aftercast.config import Config
+from aftercast.detect.settings import BENCHMARK_PREFIX
+from aftercast.ingest.load import enqueue
+from aftercast.store import schema
+from aftercast.store.bulk import allocate_ids, insert_frame, read_frame, stage_keys
+from aftercast.store.catalog import ensure_models
+from aftercast.store.db import write
+from aftercast.store.schema_detect import forecast_activity
+
+_FORECAST_COLUMNS = (
+    "f.series_id, f.model_id, f.issued_at, f.issue_period, f.target_at, f.target_period, f.horizon"
+)
+_REQUEST_KEY = ["series_id", "issued_at", "target_at"]
+_NO_WATERMARK = -(2**62)
+
+
+@dataclass
+class BenchmarkStats:
+    series: int = 0
+    issue_times: int = 0
+    forecasts: int = 0
+
+
+def benchmark_methods_in_use(config: Config) -> list[str]:
+    methods = list(config.benchmarks.methods)
+    return methods + (["ets"] if config.benchmarks.ets else [])
+
+
+def _queued_series(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(
+            connection,
+            "SELECT series_id, COUNT(*) AS n FROM match_queue WHERE kind = 0 GROUP BY series_id",
+        )
+
+
+def _new_production_forecasts(connection: Connection, series_ids: np.ndarray) -> pd.DataFrame:
+    """Production forecasts issued in or after each series' latest known issue period."""
+    marks = read_frame(
+        connection,
+        "SELECT a.series_id, MAX(a.last_issue_period) AS since FROM forecast_activity a "
+        f"JOIN {stage_keys(connection, 'bm_series', pd.DataFrame({'series_id': series_ids}))} s "
+        "ON s.series_id = a.series_id GROUP BY a.series_id",
+    )
+    since = pd.Series(series_ids, name="series_id").to_frame()
+    since = since.merge(marks, on="series_id", how="left").fillna({"since": _NO_WATERMARK})
+    staged = stage_keys(connection, "bm_since", since.astype("int64"))
+    return read_frame(
+        connection,
+        f"SELECT {_FORECAST_COLUMNS} FROM forecasts f JOIN {staged} s "
+        "ON f.series_id = s.series_id AND f.issue_period >= s.since "
+        "JOIN models m ON m.id = f.model_id WHERE m.name NOT LIKE :prefix",
+        {"prefix": f"{BENCHMARK_PREFIX}%"},
+    )
+
+
+def record_activity(connection: Connection, fresh: pd.DataFrame) -> None:
+    """Merge first/last issue per (series, model) of `fresh` forecasts into forecast_activity."""
+    seen = fresh.groupby(["series_id", "model_id"], as_index=False).agg(
+        first_issued_at=("issued_at", "min"),
+        last_issued_at=("issued_at", "max"),
+        last_issue_period=("issue_period", "max"),
+    )
+    staged = stage_keys(connection, "bm_activity", seen[["series_id", "model_id"]])
+    stored = read_frame(
+        connection,
+        "SELECT a.* FROM forecast_activity a JOIN "
+        f"{staged} k ON k.series_id = a.series_id AND k.model_id = a.model_id",
+    )
+    both = pd.concat([seen, stored], ignore_index=True)
+    merged = both.groupby(["series_id", "model_id"], as_index=False).agg(
+        first_issued_at=("first_issued_at", "min"),
+        last_issued_at=("last_issued_at", "max"),
+        last_issue_period=("last_issue_period", "max"),
+    )
+    if len(stored):
+        connection.exec_driver_sql(
+            f"DELETE FROM forecast_activity WHERE EXISTS (SELECT 1 FROM {staged} k WHERE "
+            "k.series_id = forecast_activity.series_id AND k.model_id = forecast_activity.model_id)"
+        )
+    insert_frame(connection, forecast_activity, merged.astype("int64"))
+
+
+def _missing_requests(
+    connection: Connection, fresh: pd.DataFrame, model_ids: dict[str, int]
+) -> pd.DataFrame:
+    """(request, method) combinations with no stored benchmark forecast yet."""
+    requests = fresh.drop_duplicates(_REQUEST_KEY)[
+        ["series_id", "issued_at", "issue_period", "target_at", "target_period", "horizon"]
+    ]
+    wanted = requests.merge(
+        pd.DataFrame({"method": list(model_ids), "model_id": list(model_ids.values())}),
+        how="cross",
+    )
+    low = requests.groupby("series_id", as_index=False)["issue_period"].min()
+    staged = stage_keys(connection, "bm_low", low)
+    ids = ", ".join(str(i) for i in model_ids.values())
+    stored = read_frame(
+        connection,
+        "SELECT f.series_id, f.model_id, f.issued_at, f.target_at FROM forecasts f "
+        f"JOIN {staged} s ON f.series_id = s.series_id AND f.issue_period >= s.issue_period "
+        f"WHERE f.model_id IN ({ids})",
+    ).assign(_stored=True)
+    keys = [*_REQUEST_KEY, "model_id"]
+    merged = wanted.merge(stored.astype({k: "int64" for k in keys}), on=keys, how="left")
+    return merged.loc[merged["_stored"].isna()].drop(columns="_stored")
+
+
+def _history(connection: Connection, requests: pd.DataFrame, lookback: int) -> pd.DataFrame:
+    """Actuals of the requested series from `lookback` periods before their first issue."""
+    bounds = requests.groupby("series_id", as_index=False).agg(
+        low=("issue_period", "min"), high=("issue_period", "max")
+    )
+    bounds["low"] -= lookback
+    staged = stage_keys(connection, "bm_history", bounds)
+    return read_frame(
+        connection,
+        f"SELECT a.series_id, a.period, a.value FROM actuals a JOIN {staged} b "
+        "ON a.series_id = b.series_id AND a.period >= b.low AND a.period < b.high",
+    )
+
+
+def _seasons(connection: Connection, series_ids: np.ndarray) -> pd.Series:
+    staged = stage_keys(connection, "bm_season", pd.DataFrame({"series_id": series_ids}))
+    found = read_frame(
+        connection, f"SELECT s.id, s.season FROM series s JOIN {staged} k ON k.series_id = s.id"
+    )
+    return found.set_index("id")["season"].astype("int64")
+
+
+def _forecast_frames(
+    config: Config, history: pd.DataFrame, missing: pd.DataFrame
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Benchmark forecasts and intervals for the missing (request, method) combinations."""
+    settings = config.benchmarks
+    frames: list[pd.DataFrame] = []
+    bounds: list[pd.DataFrame] = []
+    for method, requests in missing.groupby("method", sort=True):
+        if method == "ets":
+            from aftercast.benchmark_ets import ets_forecasts
+
+            made, intervals = ets_forecasts(
+                history, requests, settings.levels, settings.ets_history
+            )
+        else:
+            made, intervals = benchmark_methods.benchmark_forecasts(
+                history,
+                requests.drop(columns="method"),
+                [str(method)],
+                settings.levels,
+                settings.error_window,
+                settings.min_errors,
+            )
+        shift = sum(len(f) for f in frames)
+        frames.append(made.assign(row=made["row"] + shift))
+        bounds.append(intervals.assign(row=intervals["row"] + shift))
+    return pd.concat(frames, ignore_index=True), pd.concat(bounds, ignore_index=True)
+
+
+def _store(connection: Connection, made: pd.DataFrame, intervals: pd.DataFrame) -> None:
+    ids = allocate_ids(connection, schema.forecasts, len(made))
+    rows = made.assign(id=ids, ingested_at=int(time.time()))
+    columns = [c.name for c in schema.forecasts.columns]
+    insert_frame(connection, schema.forecasts, rows[columns].astype({"horizon": "int64"}))
+    bound_ids = pd.Series(ids, index=made["row"].to_numpy())
+    child = intervals.assign(forecast_id=bound_ids.reindex(intervals["row"]).to_numpy())
+    insert_frame(
+        connection, schema.forecast_intervals, child[["forecast_id", "level", "lower", "upper"]]
+    )
+    enqueue(connection, rows["series_id"].to_numpy(), rows["target_period"].to_numpy(), kind=0)
+
+
+def _benchmark_batch(
+    connection: Connection, config: Config, series_ids: np.ndarray
+) -> BenchmarkStats:
+    fresh = _new_production_forecasts(connection, series_ids)
+    stats = BenchmarkStats(series=len(series_ids))
+    if fresh.empty:
+        return stats
+    record_activity(connection, fresh)
+    methods = benchmark_methods_in_use(config)
+    if not methods:
+        return stats
+    model_ids = ensure_models(connection, [benchmark_methods.model_name(m) for m in methods])
+    by_name = {m: model_ids[benchmark_methods.model_name(m)] for m in methods}
+    missing = _missing_requests(connection, fresh, by_name)
+    if missing.empty:
+        return stats
+    missing["season"] = (
+        _seasons(connection, missing["series_id"].unique()).reindex(missing["series_id"]).to_numpy()
+    )
+    settings = config.benchmarks
+    lookback = max(settings.error_window, settings.ets_history) + 3 * int(
+        missing["season"].max() + missing["horizon"].max()
+    )
+    history = _history(connection, missing, lookback)
+    made, intervals = _forecast_frames(config, history, missing)
+    if made.empty:
+        return stats
+    _store(connection, made, intervals)
+    stats.issue_times = int(made[["series_id", "issued_at"]].drop_duplicates().shape[0])
+    stats.forecasts = len(made)
+    return stats
+
+
+def make_benchmarks(
+    engine: Engine, config: Config, now: int, batch_rows: int = 50_000
+) -> BenchmarkStats:
+    """Make the benchmark forecasts for every new issue time (one transaction per batch)."""
+    del now  # benchmarks depend on issue times and known actuals, not on the cycle clock
+    queued = _queued_series(engine)
+    total = BenchmarkStats()
+    if queued.empty:
+        return total
+    batch = (queued["n"].cumsum() // batch_rows).to_numpy()
+    for index in np.unique(batch):
+        with write(engine) as connection:
+            stats = _benchmark_batch(
+                connection, config, queued["series_id"].to_numpy(np.int64)[batch == index]
+            )
+        total.series += stats.series
+        total.issue_times += stats.issue_times
+        total.forecasts += stats.forecasts
+    return total

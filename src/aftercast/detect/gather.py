@@ -1,0 +1,184 @@
+"""Reading what the detection stage tests: the window's pairs, baselines, activity, freshness.
+
+Every read is one set-based query (joins against staged key tables), never one per series.
+The window is the configured detection window (`detection.window`, default the first
+configured window): `days` holds targets in (now - D days, now], `points` the N latest target
+periods per (series, model) at or before now.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from sqlalchemy import Connection
+
+from aftercast.benchmark_methods import model_name
+from aftercast.config import Config, WindowConfig
+from aftercast.detect.profiles import KEY, with_buckets
+from aftercast.detect.settings import BENCHMARK_PREFIX, bucket_labels
+from aftercast.errors import ConfigError
+from aftercast.periods import periods_by_series
+from aftercast.store.bulk import read_frame, stage_keys
+from aftercast.store.queries import intervals_for
+
+DAY = 86_400
+_PAIR_COLUMNS = (
+    "p.forecast_id, p.series_id, p.model_id, p.horizon, p.issued_at, p.target_at, "
+    "p.target_period, p.actual, p.point, p.error, p.abs_error, p.sq_error"
+)
+
+
+@dataclass
+class WindowData:
+    """The window's pairs (production models, bucketed), their interval hits, the benchmark's."""
+
+    pairs: pd.DataFrame
+    hits: pd.DataFrame
+    benchmark: pd.DataFrame
+    benchmark_hits: pd.DataFrame
+    models: pd.Series = field(default_factory=lambda: pd.Series(dtype=object))  # id -> name
+
+
+def detection_window(config: Config) -> WindowConfig:
+    windows = config.all_windows()
+    name = config.detection.window
+    if name is None:
+        return windows[0]
+    for window in windows:
+        if window.name == name:
+            return window
+    known = ", ".join(w.name for w in windows)
+    raise ConfigError(f"config key detection.window: no window named {name!r} (have {known})")
+
+
+def _window_pairs(
+    connection: Connection, window: WindowConfig, now: int, model_ids: list[int]
+) -> pd.DataFrame:
+    models = f"({', '.join(str(int(i)) for i in model_ids) or 'NULL'})"
+    if window.days is not None:
+        return read_frame(
+            connection,
+            f"SELECT {_PAIR_COLUMNS} FROM pairs p WHERE p.target_at > :since "
+            f"AND p.target_at <= :now AND p.model_id IN {models}",
+            {"since": now - int(window.days * DAY), "now": now},
+        )
+    last = read_frame(
+        connection,
+        "SELECT series_id, model_id, MAX(target_period) AS last FROM pairs "
+        f"WHERE target_at <= :now AND model_id IN {models} GROUP BY series_id, model_id",
+        {"now": now},
+    )
+    if last.empty:
+        return read_frame(connection, f"SELECT {_PAIR_COLUMNS} FROM pairs p WHERE 1 = 0")
+    # Three times the span leaves room for gaps; the exact N latest periods are kept below.
+    last["low"] = last["last"] - 3 * int(window.points or 1)
+    staged = stage_keys(connection, "detect_last", last[["series_id", "model_id", "low"]])
+    pairs = read_frame(
+        connection,
+        f"SELECT {_PAIR_COLUMNS} FROM pairs p JOIN {staged} k ON k.series_id = p.series_id "
+        "AND k.model_id = p.model_id AND p.target_period > k.low WHERE p.target_at <= :now",
+        {"now": now},
+    )
+    periods = pairs[["series_id", "model_id", "target_period"]].drop_duplicates()
+    rank = periods.groupby(["series_id", "model_id"])["target_period"].rank(ascending=False)
+    latest = periods.loc[rank <= int(window.points or 0)]
+    return pairs.merge(latest, on=["series_id", "model_id", "target_period"])
+
+
+def _hits(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
+    if pairs.empty:
+        return pd.DataFrame(
+            columns=["forecast_id", "level", "lower", "upper", "hit", "interval_score"]
+        )
+    intervals = intervals_for(connection, pairs["forecast_id"])
+    columns = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at", "actual"]
+    return intervals.merge(pairs[columns], on="forecast_id")
+
+
+def window_data(connection: Connection, config: Config, now: int) -> WindowData:
+    """The detection window's pairs and hits, split into tested models and the benchmark."""
+    models = read_frame(connection, "SELECT id, name FROM models").set_index("id")["name"]
+    is_benchmark = models.str.startswith(BENCHMARK_PREFIX)
+    wanted = ~is_benchmark | config.detection.include_benchmarks
+    wanted |= models == model_name(config.detection.benchmark)
+    pairs = _window_pairs(connection, detection_window(config), now, list(models.index[wanted]))
+    names = pd.Series(models.reindex(pairs["model_id"]).fillna("").to_numpy())
+    reference = (names == model_name(config.detection.benchmark)).to_numpy()
+    tested = ~names.str.startswith(BENCHMARK_PREFIX).to_numpy()
+    tested |= config.detection.include_benchmarks & ~reference
+    labels = bucket_labels(config.horizon_buckets)
+    production = with_buckets(pairs.loc[tested], labels)
+    benchmark = with_buckets(pairs.loc[reference], labels)
+    return WindowData(
+        pairs=production,
+        hits=_hits(connection, production),
+        benchmark=benchmark,
+        benchmark_hits=_hits(connection, benchmark),
+        models=models,
+    )
+
+
+def series_periods(connection: Connection, series_ids: np.ndarray, now: int) -> pd.DataFrame:
+    """Each series' key and the period ordinal that contains `now` (its own frequency and zone)."""
+    staged = stage_keys(connection, "detect_series", pd.DataFrame({"series_id": series_ids}))
+    found = read_frame(
+        connection,
+        f"SELECT s.id AS series_id, s.key, s.frequency, s.timezone FROM series s "
+        f"JOIN {staged} k ON k.series_id = s.id",
+    )
+    found["now_period"] = periods_by_series(
+        np.full(len(found), now, dtype=np.int64),
+        found["frequency"].to_numpy(),
+        found["timezone"].to_numpy(),
+    )
+    return found.set_index("series_id")
+
+
+def activity(connection: Connection) -> pd.DataFrame:
+    """forecast_activity of the production models (benchmarks are aftercast's own)."""
+    return read_frame(
+        connection,
+        "SELECT a.series_id, a.model_id, a.first_issued_at, a.last_issued_at, a.last_issue_period "
+        "FROM forecast_activity a JOIN models m ON m.id = a.model_id WHERE m.name NOT LIKE :p",
+        {"p": f"{BENCHMARK_PREFIX}%"},
+    )
+
+
+def overdue_targets(
+    connection: Connection, periods: pd.DataFrame, overdue_periods: int, since: int, now: int
+) -> pd.DataFrame:
+    """Per (series, model): production targets after the series' latest actual, already due.
+
+    A target is due once `overdue_periods` periods have passed since its period; only targets
+    after `since` count, so long-retired series are not reported.
+    """
+    if periods.empty:
+        return pd.DataFrame()
+    staged = stage_keys(
+        connection, "detect_due", periods.reset_index()[["series_id", "now_period"]]
+    )
+    latest = read_frame(
+        connection,
+        f"SELECT a.series_id, MAX(a.period) AS last_period, MAX(a.observed_at) AS last_at "
+        f"FROM actuals a JOIN {staged} k ON k.series_id = a.series_id GROUP BY a.series_id",
+    )
+    ranges = periods.reset_index()[["series_id", "now_period"]].merge(
+        latest, on="series_id", how="left"
+    )
+    ranges["low"] = ranges["last_period"].fillna(-(2**62)).astype(np.int64)
+    ranges["due"] = ranges["now_period"] - overdue_periods
+    staged_ranges = stage_keys(connection, "detect_ranges", ranges[["series_id", "low", "due"]])
+    found = read_frame(
+        connection,
+        "SELECT f.series_id, f.model_id, MIN(f.target_period) AS first_period, "
+        "MIN(f.target_at) AS first_at, COUNT(DISTINCT f.target_period) AS targets "
+        f"FROM forecasts f JOIN {staged_ranges} r ON r.series_id = f.series_id "
+        "AND f.target_period > r.low AND f.target_period <= r.due "
+        "JOIN models m ON m.id = f.model_id "
+        "WHERE m.name NOT LIKE :p AND f.target_at > :since AND f.target_at <= :now "
+        "GROUP BY f.series_id, f.model_id",
+        {"p": f"{BENCHMARK_PREFIX}%", "since": since, "now": now},
+    )
+    return found.merge(latest[["series_id", "last_at"]], on="series_id", how="left")

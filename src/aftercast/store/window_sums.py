@@ -1,0 +1,189 @@
+"""Window sums in SQL: the additive statistics of `windows.WindowSums`, grouped by the store.
+
+The pairs inside a window are selected and summed per (series, model, horizon), per interval
+level and per quantile by three GROUP BY queries, so only one row per key leaves the
+database, never the pairs themselves. A query covers the keys of a staged key table: a page
+of series (column series_id) or chosen (series, model) keys (series_id, model_id), optionally
+with a floor_period below which no pair can be in a `points` window (the cycle knows it from
+the previous refresh, which keeps the ranking of target periods to the recent ones).
+The same sums are stored per window in the tables of `schema_windows` and read back here.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pandas as pd
+from sqlalchemy import Connection, text
+
+from aftercast.config import WindowConfig
+from aftercast.store.bulk import insert_frame, read_frame, stage_keys
+from aftercast.store.schema_windows import SUM_TABLES
+from aftercast.windows import (
+    DAY,
+    EXTREMES,
+    HORIZON_KEY,
+    LEVEL_SUMS,
+    POINT_SUMS,
+    QUANTILE_SUMS,
+    WindowSums,
+)
+
+# Lower than any period ordinal: "no floor".
+NO_FLOOR = -(2**62)
+
+_POINT_SELECT = """
+COUNT(*) AS n, SUM(p.error) AS sum_error, SUM(p.abs_error) AS sum_abs_error,
+SUM(p.sq_error) AS sum_sq_error, COUNT(p.ape) AS n_ape, SUM(p.ape) AS sum_ape,
+COUNT(p.sape) AS n_sape, SUM(p.sape) AS sum_sape, SUM(ABS(p.actual)) AS sum_abs_actual,
+COUNT(p.scaled_error) AS n_scaled, SUM(ABS(p.scaled_error)) AS sum_abs_scaled,
+SUM(CASE WHEN p.scale_sq > 0 THEN 1 ELSE 0 END) AS n_sq_scaled,
+SUM(CASE WHEN p.scale_sq > 0 THEN p.sq_error / p.scale_sq END) AS sum_sq_scaled,
+MIN(p.target_at) AS first_target, MAX(p.target_at) AS last_target,
+MIN(p.target_period) AS first_period"""
+_LEVEL_SELECT = """
+COUNT(*) AS n, SUM(i.hit) AS hits, SUM(i.width) AS sum_width,
+SUM(i.interval_score) AS sum_interval_score"""
+_QUANTILE_SELECT = """
+COUNT(*) AS n, SUM(q.pinball) AS sum_pinball,
+SUM(CASE WHEN p.actual <= q.value THEN 1 ELSE 0 END) AS below"""
+_GROUP = "p.series_id, p.model_id, p.horizon"
+
+
+def window_spec(window: WindowConfig) -> str:
+    """'days=28' or 'points=60': what a stored window was computed for."""
+    return f"days={window.days:g}" if window.days is not None else f"points={window.points}"
+
+
+def _key_join(staged: str, columns: list[str]) -> str:
+    on = " AND ".join(f"k.{c} = p.{c}" for c in columns if c != "floor_period")
+    return f"JOIN {staged} k ON {on}"
+
+
+def _points_cutoffs(connection: Connection, staged: str, columns: list[str], points: int,
+                    now: int) -> str:
+    """Stage, per (series, model), the first of its `points` latest target periods <= now."""
+    floor = " AND p.target_period >= k.floor_period" if "floor_period" in columns else ""
+    cutoffs = read_frame(
+        connection,
+        "SELECT series_id, model_id, MIN(target_period) AS first_period FROM ("
+        "SELECT p.series_id, p.model_id, p.target_period, DENSE_RANK() OVER (PARTITION BY "
+        "p.series_id, p.model_id ORDER BY p.target_period DESC) AS period_rank FROM pairs p "
+        f"{_key_join(staged, columns)} WHERE p.target_at <= :now{floor}) ranked "
+        "WHERE period_rank <= :points GROUP BY series_id, model_id",
+        {"now": now, "points": points},
+    )
+    if cutoffs.empty:
+        cutoffs = pd.DataFrame({"series_id": [], "model_id": [], "first_period": []})
+    return stage_keys(connection, "window_cutoffs", cutoffs)
+
+
+def _selection(
+    connection: Connection, window: WindowConfig, now: int, staged: str, columns: list[str]
+) -> tuple[str, dict[str, Any]]:
+    """JOIN and WHERE text choosing the pairs of `window` at `now` for the staged keys."""
+    if window.days is not None:
+        where = "WHERE p.target_at > :start AND p.target_at <= :now"
+        params = {"start": now - int(window.days * DAY), "now": now}
+        return f"{_key_join(staged, columns)} {where}", params
+    cut = _points_cutoffs(connection, staged, columns, int(window.points or 0), now)
+    join = f"JOIN {cut} c ON c.series_id = p.series_id AND c.model_id = p.model_id"
+    return f"{join} WHERE p.target_period >= c.first_period AND p.target_at <= :now", {"now": now}
+
+
+def compute_sums(
+    connection: Connection, window: WindowConfig, now: int, keys: pd.DataFrame
+) -> WindowSums:
+    """Sums of the pairs inside `window` at `now` for `keys` (see the module docstring)."""
+    if keys.empty:
+        return WindowSums.empty()
+    columns = list(keys.columns)
+    # One staging table per shape of key: a temporary table keeps the columns it was made with.
+    staged = stage_keys(connection, "window_keys_" + "".join(c[0] for c in columns), keys)
+    chosen, params = _selection(connection, window, now, staged, columns)
+    points = read_frame(
+        connection,
+        f"SELECT {_GROUP}, {_POINT_SELECT} FROM pairs p {chosen} GROUP BY {_GROUP}",
+        params,
+    )
+    levels = read_frame(
+        connection,
+        f"SELECT {_GROUP}, i.level, {_LEVEL_SELECT} FROM pairs p "
+        f"JOIN pair_intervals i ON i.forecast_id = p.forecast_id {chosen} "
+        f"GROUP BY {_GROUP}, i.level",
+        params,
+    )
+    quantiles = read_frame(
+        connection,
+        f"SELECT {_GROUP}, q.prob, {_QUANTILE_SELECT} FROM pairs p "
+        f"JOIN pair_quantiles q ON q.forecast_id = p.forecast_id {chosen} "
+        f"GROUP BY {_GROUP}, q.prob",
+        params,
+    )
+    return _typed(WindowSums(points, levels, quantiles))
+
+
+_INTEGERS = {"n", "n_ape", "n_sape", "n_scaled", "n_sq_scaled", "hits", "below", *EXTREMES}
+
+
+def _typed(sums: WindowSums) -> WindowSums:
+    """Fixed dtypes, whatever the driver returned (empty results come back as objects)."""
+
+    def cast(frame: pd.DataFrame, extra: list[str], names: list[str]) -> pd.DataFrame:
+        frame = frame.reindex(columns=[*HORIZON_KEY, *extra, *names])
+        kinds = {c: "int64" for c in [*HORIZON_KEY, *_INTEGERS.intersection(names)]}
+        kinds.update({c: "float64" for c in [*extra, *names] if c not in kinds})
+        return frame.astype(kinds)
+
+    return WindowSums(
+        cast(sums.points, [], [*POINT_SUMS, *EXTREMES]),
+        cast(sums.levels, ["level"], LEVEL_SUMS),
+        cast(sums.quantiles, ["prob"], QUANTILE_SUMS),
+    )
+
+
+def delete_stored(connection: Connection, window_name: str, keys: pd.DataFrame | None) -> None:
+    """Remove the stored sums of `window_name` for `keys` (series_id, model_id), or all."""
+    staged = stage_keys(connection, "window_drop", keys) if keys is not None else None
+    for table, _extra in SUM_TABLES.values():
+        sql = f"DELETE FROM {table.name} WHERE window_name = :w"
+        if staged is not None:
+            sql += (
+                f" AND EXISTS (SELECT 1 FROM {staged} k WHERE k.series_id = {table.name}.series_id"
+                f" AND k.model_id = {table.name}.model_id)"
+            )
+        connection.execute(text(sql), {"w": window_name})
+
+
+def store_sums(connection: Connection, window_name: str, sums: WindowSums) -> None:
+    for part, (table, _extra) in SUM_TABLES.items():
+        frame = getattr(sums, part)
+        insert_frame(connection, table, frame.assign(window_name=window_name))
+
+
+def read_stored(connection: Connection, window_name: str, series_ids: pd.Series) -> WindowSums:
+    """The stored sums of `window_name` for a page of series."""
+    staged = stage_keys(connection, "window_page", pd.DataFrame({"series_id": series_ids}))
+    parts = {}
+    for part, (table, _extra) in SUM_TABLES.items():
+        parts[part] = read_frame(
+            connection,
+            f"SELECT t.* FROM {table.name} t JOIN {staged} k ON k.series_id = t.series_id "
+            "WHERE t.window_name = :w",
+            {"w": window_name},
+        ).drop(columns="window_name")
+    return _typed(WindowSums(**parts))
+
+
+def stored_floors(connection: Connection, window_name: str, keys: pd.DataFrame) -> pd.DataFrame:
+    """`keys` with floor_period: the first target period each key's stored window held."""
+    staged = stage_keys(connection, "window_floor", keys[["series_id", "model_id"]])
+    floors = read_frame(
+        connection,
+        "SELECT t.series_id, t.model_id, MIN(t.first_period) AS floor_period "
+        f"FROM window_point_sums t JOIN {staged} k ON k.series_id = t.series_id "
+        "AND k.model_id = t.model_id WHERE t.window_name = :w GROUP BY t.series_id, t.model_id",
+        {"w": window_name},
+    )
+    merged = keys[["series_id", "model_id"]].merge(floors, on=["series_id", "model_id"], how="left")
+    return merged.fillna({"floor_period": NO_FLOOR}).astype("int64")

@@ -1,0 +1,285 @@
+"""The windows stage: keep each window's sums current, and read window rows for any clock.
+
+Design: additive sums per (series, model, horizon) for each configured window are stored as
+of the last cycle's clock (`store.schema_windows`). After matching, a cycle recomputes the
+sums only for the (series, model) keys whose pairs were scored this cycle, plus the keys with
+pairs in the strips the window's edges swept since the last refresh (a pair entering at the
+new end, or leaving past the new start); every other key's window holds the same pairs as
+before. Each recompute is a GROUP BY over that key's pairs inside the window, so the work
+follows the pairs touched and the window's size, never the stored history. Recomputing
+rather than adding deltas keeps the sums exact: no rounding drift, nothing to reconcile after
+a revision. The store is refreshed from scratch when there is no earlier refresh, the window's
+definition changed, the clock jumped by more than a whole window, or a cycle since the last
+refresh ended without reaching this stage (its matched pairs are unknown). Readers get rows
+for the refreshed clock from the stored sums and for any other clock straight from the pairs,
+page by page of series, with the same sums and the same arithmetic (`windows`).
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterator
+from dataclasses import dataclass
+from typing import Any
+
+import pandas as pd
+from sqlalchemy import Connection, Engine, text
+
+from aftercast.config import Config, WindowConfig
+from aftercast.errors import AftercastError
+from aftercast.store.bulk import read_frame
+from aftercast.store.db import write
+from aftercast.store.window_sums import (
+    compute_sums,
+    delete_stored,
+    read_stored,
+    store_sums,
+    stored_floors,
+    window_spec,
+)
+from aftercast.windows import DAY, KEY, group_horizons, window_rows
+
+PAGE_SERIES = 5_000
+_KEYS_PER_BATCH = 20_000
+
+
+@dataclass
+class WindowRefresh:
+    """What the stage did for one window: recomputed from scratch or for `keys` keys."""
+
+    window: str
+    full: bool
+    keys: int
+
+
+def find_window(config: Config, name: str | None) -> WindowConfig:
+    """The named window (default: the first configured); unknown names are a user error."""
+    windows = config.all_windows()
+    if name is None:
+        return windows[0]
+    for window in windows:
+        if window.name == name:
+            return window
+    known = ", ".join(w.name for w in windows)
+    raise AftercastError(f"window {name!r}: no such window; configured: {known}")
+
+
+def _mark(connection: Connection, name: str) -> dict[str, Any] | None:
+    row = connection.execute(
+        text("SELECT spec, now, cycle_id FROM window_marks WHERE window_name = :w"), {"w": name}
+    ).one_or_none()
+    return None if row is None else dict(row._mapping)
+
+
+def _latest_cycle(connection: Connection) -> int:
+    return int(connection.execute(text("SELECT COALESCE(MAX(id), 0) FROM cycles")).scalar_one())
+
+
+def _missed_cycles(connection: Connection, mark: dict[str, Any], latest: int) -> bool:
+    """Did a cycle start after the last refresh and stop before refreshing (or is it running)?"""
+    count = connection.execute(
+        text(
+            "SELECT COUNT(*) FROM cycles WHERE id > :after AND id < :latest "
+            "AND finished_at IS NULL"
+        ),
+        {"after": mark["cycle_id"], "latest": latest},
+    ).scalar_one()
+    return bool(count)
+
+
+def is_current(connection: Connection, window: WindowConfig, now: int) -> bool:
+    """Do the stored sums of `window` hold exactly its pairs at `now`?"""
+    mark = _mark(connection, window.name)
+    if mark is None or mark["spec"] != window_spec(window) or int(mark["now"]) != now:
+        return False
+    return not _missed_cycles(connection, mark, _latest_cycle(connection) + 1)
+
+
+def _swept_keys(
+    connection: Connection, window: WindowConfig, before: int, now: int
+) -> pd.DataFrame:
+    """(series, model) keys with pairs whose target_at the window's edges passed."""
+    low, high = min(before, now), max(before, now)
+    strips = [(low, high)]
+    if window.days is not None:
+        span = int(window.days * DAY)
+        strips.append((low - span, high - span))
+    selects = " UNION ".join(
+        f"SELECT series_id, model_id FROM pairs WHERE target_at > :a{i} AND target_at <= :b{i}"
+        for i in range(len(strips))
+    )
+    params = {f"a{i}": a for i, (a, _) in enumerate(strips)}
+    params.update({f"b{i}": b for i, (_, b) in enumerate(strips)})
+    return read_frame(connection, selects, params)
+
+
+def _keys_to_refresh(
+    connection: Connection,
+    window: WindowConfig,
+    now: int,
+    touched: pd.DataFrame | None,
+    latest: int,
+) -> pd.DataFrame | None:
+    """Keys whose window changed since the last refresh, or None to recompute everything."""
+    mark = _mark(connection, window.name)
+    if mark is None or mark["spec"] != window_spec(window) or _missed_cycles(
+        connection, mark, latest
+    ):
+        return None
+    before = int(mark["now"])
+    if window.days is not None and abs(now - before) >= window.days * DAY:
+        return None
+    parts = [_swept_keys(connection, window, before, now)] if before != now else []
+    if touched is not None and len(touched):
+        parts.append(touched[KEY])
+    if not parts:
+        return pd.DataFrame({"series_id": [], "model_id": []}, dtype="int64")
+    keys = pd.concat(parts, ignore_index=True).astype("int64").drop_duplicates()
+    if window.points is not None and now >= before:
+        # The N latest periods only move up as the clock does: no need to rank older ones.
+        keys = stored_floors(connection, window.name, keys)
+    return keys.reset_index(drop=True)
+
+
+def _write_mark(connection: Connection, window: WindowConfig, now: int, cycle_id: int) -> None:
+    connection.execute(text("DELETE FROM window_marks WHERE window_name = :w"), {"w": window.name})
+    connection.execute(
+        text(
+            "INSERT INTO window_marks (window_name, spec, now, cycle_id, refreshed_at) "
+            "VALUES (:w, :spec, :now, :cycle, :at)"
+        ),
+        {
+            "w": window.name,
+            "spec": window_spec(window),
+            "now": now,
+            "cycle": cycle_id,
+            "at": int(time.time()),
+        },
+    )
+
+
+def _series_id_pages(connection: Connection, size: int) -> Iterator[pd.DataFrame]:
+    """Pages of (id, key) of all series in id order (keyset paging)."""
+    after = -1
+    while True:
+        page = read_frame(
+            connection,
+            "SELECT id, key FROM series WHERE id > :after ORDER BY id LIMIT :n",
+            {"after": after, "n": size},
+        )
+        if page.empty:
+            return
+        after = int(page["id"].iloc[-1])
+        yield page
+
+
+def _refresh_window(
+    connection: Connection,
+    window: WindowConfig,
+    now: int,
+    touched: pd.DataFrame | None,
+    latest: int,
+) -> WindowRefresh:
+    keys = _keys_to_refresh(connection, window, now, touched, latest)
+    if keys is None:
+        delete_stored(connection, window.name, None)
+        count = 0
+        for page in _series_id_pages(connection, PAGE_SERIES):
+            ids = pd.DataFrame({"series_id": page["id"].to_numpy()})
+            sums = compute_sums(connection, window, now, ids)
+            store_sums(connection, window.name, sums)
+            count += len(sums.points[KEY].drop_duplicates())
+        refresh = WindowRefresh(window.name, True, count)
+    else:
+        for start in range(0, len(keys), _KEYS_PER_BATCH):
+            batch = keys.iloc[start : start + _KEYS_PER_BATCH]
+            delete_stored(connection, window.name, batch[KEY])
+            store_sums(connection, window.name, compute_sums(connection, window, now, batch))
+        refresh = WindowRefresh(window.name, False, len(keys))
+    _write_mark(connection, window, now, latest)
+    return refresh
+
+
+def refresh_windows(
+    engine: Engine, config: Config, now: int, touched: pd.DataFrame | None
+) -> list[WindowRefresh]:
+    """The cycle's windows stage: bring every configured window's stored sums to `now`.
+
+    `touched` holds the (series_id, model_id) keys whose pairs matching scored this cycle.
+    """
+    refreshes = []
+    for window in config.all_windows():
+        with write(engine) as connection:
+            latest = _latest_cycle(connection)
+            refreshes.append(_refresh_window(connection, window, now, touched, latest))
+    return refreshes
+
+
+def _names(connection: Connection, table: str, column: str) -> pd.Series:
+    frame = read_frame(connection, f"SELECT id, {column} FROM {table}")
+    return pd.Series(frame[column].to_numpy(), index=frame["id"].to_numpy())
+
+
+def rows_for_page(
+    connection: Connection,
+    buckets: list[str],
+    window: WindowConfig,
+    now: int,
+    page: pd.DataFrame,
+    stored: bool,
+) -> pd.DataFrame:
+    """Window rows for a page of series (columns id, key), with series and model names.
+
+    Columns: series_id (int), series (key), model_id, model, horizon (int, bucket or 'all'),
+    the measures of `windows.window_rows`, window, window_start and window_end (epoch
+    seconds; a `days` window starts, exclusive, at now - D days, a `points` window at its
+    first target).
+    """
+    ids = page["id"].astype("int64")
+    if stored:
+        sums = read_stored(connection, window.name, ids)
+    else:
+        sums = compute_sums(connection, window, now, pd.DataFrame({"series_id": ids}))
+    if sums.points.empty:
+        return pd.DataFrame()
+    rows = window_rows(group_horizons(sums, buckets))
+    keys = pd.Series(page["key"].to_numpy(), index=ids.to_numpy())
+    rows.insert(1, "series", rows["series_id"].map(keys))
+    rows.insert(3, "model", rows["model_id"].map(_names(connection, "models", "name")))
+    rows["window"] = window.name
+    if window.days is not None:
+        rows["window_start"] = now - int(window.days * DAY)
+        rows["window_end"] = now
+    else:
+        rows["window_start"] = rows["first_target"]
+        rows["window_end"] = rows["last_target"]
+    return rows.reset_index(drop=True)
+
+
+def iter_windows(
+    engine: Engine,
+    config: Config,
+    now: int,
+    window_name: str | None = None,
+    page_series: int = PAGE_SERIES,
+) -> Iterator[pd.DataFrame]:
+    """Window rows at `now` for all series, one frame per page of series (see rows_for_page)."""
+    window = find_window(config, window_name)
+    with engine.connect() as connection:
+        stored = is_current(connection, window, now)
+        for page in _series_id_pages(connection, page_series):
+            rows = rows_for_page(connection, config.horizon_buckets, window, now, page, stored)
+            if len(rows):
+                yield rows
+
+
+def current_windows(
+    engine: Engine, config: Config, now: int, window_name: str | None = None
+) -> pd.DataFrame:
+    """Window rows at `now` for every (series, model) and horizon, bucket and 'all'.
+
+    What detection reads: the stored sums when the last cycle refreshed them at `now`, else
+    computed from the pairs. Empty frame when no pair is inside the window.
+    """
+    pages = list(iter_windows(engine, config, now, window_name))
+    return pd.concat(pages, ignore_index=True) if pages else pd.DataFrame()
