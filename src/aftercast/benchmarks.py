@@ -5,11 +5,14 @@ forecasts issued since the series' latest known issue period (an index range on
 (series, issue_period), never a scan of the forecasts table), keeps `forecast_activity` current
 (first and last issue per series and model, which baselines and the stalled-forecast check
 read), and makes the configured benchmark forecasts for the same issue times and targets from
-the actuals known then (`benchmark_methods`; optionally ETS). They are stored as ordinary
-forecasts under the reserved names `benchmark:<method>` and queued, so matching pairs and scores
-them like any model's. Forecasts that already have their benchmark are skipped, so the stage is
-incremental and idempotent. Issue times older than a series' latest already-seen issue period
-(a late backfill) get no benchmark.
+the actuals of the periods before the issue period (`benchmark_methods`; optionally ETS). They
+are stored as ordinary forecasts under the reserved names `benchmark:<method>` through the
+ingest path's upsert, so matching pairs and scores them like any model's. A benchmark is a
+function of the data alone: when an actual arrives late or is revised, the benchmarks issued
+after its period are made again (unchanged ones are left alone), so the store holds the same
+benchmarks whatever order the data came in. Incremental: only those issue times are touched.
+Issue times older than a series' latest already-seen issue period (a late backfill of
+forecasts) get their benchmark only when an earlier actual changes.
 """
 
 from __future__ import annotations
@@ -24,9 +27,9 @@ from sqlalchemy import Connection, Engine
 from aftercast import benchmark_methods
 from aftercast.config import Config
 from aftercast.detect.settings import BENCHMARK_PREFIX
-from aftercast.ingest.load import enqueue
-from aftercast.store import schema
-from aftercast.store.bulk import allocate_ids, insert_frame, read_frame, stage_keys
+from aftercast.ingest.load import write_forecasts
+from aftercast.ingest.validate import Checked
+from aftercast.store.bulk import insert_frame, read_frame, stage_keys
 from aftercast.store.catalog import ensure_models
 from aftercast.store.db import write
 from aftercast.store.schema_detect import forecast_activity
@@ -54,20 +57,35 @@ def _queued_series(engine: Engine) -> pd.DataFrame:
     with engine.connect() as connection:
         return read_frame(
             connection,
-            "SELECT series_id, COUNT(*) AS n FROM match_queue WHERE kind = 0 GROUP BY series_id",
+            "SELECT series_id, COUNT(*) AS n FROM match_queue GROUP BY series_id",
         )
 
 
-def _new_production_forecasts(connection: Connection, series_ids: np.ndarray) -> pd.DataFrame:
-    """Production forecasts issued in or after each series' latest known issue period."""
+def _production_forecasts(connection: Connection, series_ids: np.ndarray) -> pd.DataFrame:
+    """Production forecasts whose benchmarks are new or may have changed, per series.
+
+    Those issued in or after the series' latest already-seen issue period (new forecasts), and
+    those issued after the earliest period whose actual arrived or changed since the last
+    cycle (their benchmarks knew less, or another value, when they were made).
+    """
+    staged_series = stage_keys(connection, "bm_series", pd.DataFrame({"series_id": series_ids}))
     marks = read_frame(
         connection,
-        "SELECT a.series_id, MAX(a.last_issue_period) AS since FROM forecast_activity a "
-        f"JOIN {stage_keys(connection, 'bm_series', pd.DataFrame({'series_id': series_ids}))} s "
-        "ON s.series_id = a.series_id GROUP BY a.series_id",
+        "SELECT a.series_id, MAX(a.last_issue_period) AS seen FROM forecast_activity a "
+        f"JOIN {staged_series} s ON s.series_id = a.series_id GROUP BY a.series_id",
+    )
+    changed = read_frame(
+        connection,
+        "SELECT q.series_id, MIN(q.period) + 1 AS changed FROM match_queue q "
+        f"JOIN {staged_series} s ON s.series_id = q.series_id WHERE q.kind = 1 "
+        "GROUP BY q.series_id",
     )
     since = pd.Series(series_ids, name="series_id").to_frame()
-    since = since.merge(marks, on="series_id", how="left").fillna({"since": _NO_WATERMARK})
+    since = since.merge(marks, on="series_id", how="left").merge(
+        changed, on="series_id", how="left"
+    )
+    since["since"] = since[["seen", "changed"]].min(axis=1).fillna(_NO_WATERMARK)
+    since = since[["series_id", "since"]]
     staged = stage_keys(connection, "bm_since", since.astype("int64"))
     return read_frame(
         connection,
@@ -105,29 +123,13 @@ def record_activity(connection: Connection, fresh: pd.DataFrame) -> None:
     insert_frame(connection, forecast_activity, merged.astype("int64"))
 
 
-def _missing_requests(
-    connection: Connection, fresh: pd.DataFrame, model_ids: dict[str, int]
-) -> pd.DataFrame:
-    """(request, method) combinations with no stored benchmark forecast yet."""
+def _requests(fresh: pd.DataFrame, model_ids: dict[str, int]) -> pd.DataFrame:
+    """Every (issue time, target) of the production forecasts, once per benchmark method."""
     requests = fresh.drop_duplicates(_REQUEST_KEY)[
         ["series_id", "issued_at", "issue_period", "target_at", "target_period", "horizon"]
     ]
-    wanted = requests.merge(
-        pd.DataFrame({"method": list(model_ids), "model_id": list(model_ids.values())}),
-        how="cross",
-    )
-    low = requests.groupby("series_id", as_index=False)["issue_period"].min()
-    staged = stage_keys(connection, "bm_low", low)
-    ids = ", ".join(str(i) for i in model_ids.values())
-    stored = read_frame(
-        connection,
-        "SELECT f.series_id, f.model_id, f.issued_at, f.target_at FROM forecasts f "
-        f"JOIN {staged} s ON f.series_id = s.series_id AND f.issue_period >= s.issue_period "
-        f"WHERE f.model_id IN ({ids})",
-    ).assign(_stored=True)
-    keys = [*_REQUEST_KEY, "model_id"]
-    merged = wanted.merge(stored.astype({k: "int64" for k in keys}), on=keys, how="left")
-    return merged.loc[merged["_stored"].isna()].drop(columns="_stored")
+    methods = pd.DataFrame({"method": list(model_ids), "model_id": list(model_ids.values())})
+    return requests.merge(methods, how="cross")
 
 
 def _history(connection: Connection, requests: pd.DataFrame, lookback: int) -> pd.DataFrame:
@@ -181,23 +183,29 @@ def _forecast_frames(
     return pd.concat(frames, ignore_index=True), pd.concat(bounds, ignore_index=True)
 
 
-def _store(connection: Connection, made: pd.DataFrame, intervals: pd.DataFrame) -> None:
-    ids = allocate_ids(connection, schema.forecasts, len(made))
-    rows = made.assign(id=ids, ingested_at=int(time.time()))
-    columns = [c.name for c in schema.forecasts.columns]
-    insert_frame(connection, schema.forecasts, rows[columns].astype({"horizon": "int64"}))
-    bound_ids = pd.Series(ids, index=made["row"].to_numpy())
-    child = intervals.assign(forecast_id=bound_ids.reindex(intervals["row"]).to_numpy())
-    insert_frame(
-        connection, schema.forecast_intervals, child[["forecast_id", "level", "lower", "upper"]]
+def _store(connection: Connection, made: pd.DataFrame, intervals: pd.DataFrame) -> int:
+    """Upsert through the ingest path: new ones inserted, changed ones replaced and queued."""
+    good = made.set_index("row").assign(
+        series_key=lambda f: f["series_id"], model=lambda f: f["model_id"].astype(str)
     )
-    enqueue(connection, rows["series_id"].to_numpy(), rows["target_period"].to_numpy(), kind=0)
+    checked = Checked(
+        good=good,
+        rejected=pd.DataFrame(),
+        intervals=intervals,
+        quantiles=pd.DataFrame({"row": [], "prob": [], "value": []}),
+    )
+    ids = made["series_id"].unique()
+    models = {str(m): int(m) for m in made["model_id"].unique()}
+    written = write_forecasts(
+        connection, checked, pd.Series(ids, index=ids), models, int(time.time())
+    )
+    return written.accepted + written.revised
 
 
 def _benchmark_batch(
     connection: Connection, config: Config, series_ids: np.ndarray
 ) -> BenchmarkStats:
-    fresh = _new_production_forecasts(connection, series_ids)
+    fresh = _production_forecasts(connection, series_ids)
     stats = BenchmarkStats(series=len(series_ids))
     if fresh.empty:
         return stats
@@ -207,9 +215,7 @@ def _benchmark_batch(
         return stats
     model_ids = ensure_models(connection, [benchmark_methods.model_name(m) for m in methods])
     by_name = {m: model_ids[benchmark_methods.model_name(m)] for m in methods}
-    missing = _missing_requests(connection, fresh, by_name)
-    if missing.empty:
-        return stats
+    missing = _requests(fresh, by_name)
     missing["season"] = (
         _seasons(connection, missing["series_id"].unique()).reindex(missing["series_id"]).to_numpy()
     )
@@ -221,18 +227,26 @@ def _benchmark_batch(
     made, intervals = _forecast_frames(config, history, missing)
     if made.empty:
         return stats
-    _store(connection, made, intervals)
+    stats.forecasts = _store(connection, made, intervals)
     stats.issue_times = int(made[["series_id", "issued_at"]].drop_duplicates().shape[0])
-    stats.forecasts = len(made)
     return stats
 
 
 def make_benchmarks(
-    engine: Engine, config: Config, now: int, batch_rows: int = 50_000
+    engine: Engine,
+    config: Config,
+    now: int,
+    series_ids: np.ndarray | None = None,
+    batch_rows: int = 50_000,
 ) -> BenchmarkStats:
-    """Make the benchmark forecasts for every new issue time (one transaction per batch)."""
+    """Make the benchmark forecasts for every new issue time (one transaction per batch).
+
+    `series_ids` limits the stage to those series (a replica's shards); None means all.
+    """
     del now  # benchmarks depend on issue times and known actuals, not on the cycle clock
     queued = _queued_series(engine)
+    if series_ids is not None:
+        queued = queued.loc[queued["series_id"].isin(series_ids)]
     total = BenchmarkStats()
     if queued.empty:
         return total

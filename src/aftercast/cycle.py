@@ -12,6 +12,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Any
 
 import numpy as np
+import pandas as pd
 from sqlalchemy import Engine, update
 
 from aftercast.alerts.stage import update_alerts
@@ -61,31 +62,42 @@ def _close_cycle(engine: Engine, report: CycleReport) -> None:
 
 
 def run_cycle(
-    engine: Engine, config: Config, now: int | None = None, series_ids: np.ndarray | None = None
+    engine: Engine,
+    config: Config,
+    now: int | None = None,
+    series_ids: np.ndarray | None = None,
+    touched: pd.DataFrame | None = None,
+    fleet: bool = True,
 ) -> CycleReport:
     """Match and score what changed since the last cycle, as of `now` (default: the clock).
 
-    `series_ids` limits the cycle to those series (a replica's shards); None means all.
+    `series_ids` limits benchmarks and matching to those series (None: all). With several
+    replicas (`coordination`) each runs its shards with `fleet=False` (benchmarks and matching
+    only), then one runs the stages that look at every series at once for the slot, with no
+    series left to match and the (series_id, model_id) keys the shards `touched`.
     """
     now = int(time.time()) if now is None else now
     started = time.perf_counter()
     report = CycleReport(cycle_id=_open_cycle(engine, now), now=now)
 
-    mark = time.perf_counter()
-    pull_all(engine, config, now, report.cycle_id)
-    report.stages["sources"] = time.perf_counter() - mark
+    if fleet:
+        mark = time.perf_counter()
+        pull_all(engine, config, now, report.cycle_id)
+        report.stages["sources"] = time.perf_counter() - mark
 
     mark = time.perf_counter()
-    report.benchmarks = make_benchmarks(engine, config, now).forecasts
+    report.benchmarks = make_benchmarks(engine, config, now, series_ids).forecasts
     report.stages["benchmarks"] = time.perf_counter() - mark
 
     mark = time.perf_counter()
     matched = match(engine, now, series_ids=series_ids)
     report.queued, report.pairs_scored = matched.queued, matched.pairs_scored
     report.stages["match"] = time.perf_counter() - mark
+    if not fleet:
+        return _finish(engine, report, started)
 
     mark = time.perf_counter()
-    refresh_windows(engine, config, now, matched.touched)
+    refresh_windows(engine, config, now, matched.touched if touched is None else touched)
     report.stages["windows"] = time.perf_counter() - mark
 
     mark = time.perf_counter()
@@ -99,7 +111,10 @@ def run_cycle(
     mark = time.perf_counter()
     report.delivery = deliver_due(engine, config).as_json()
     report.stages["notify"] = time.perf_counter() - mark
+    return _finish(engine, report, started)
 
+
+def _finish(engine: Engine, report: CycleReport, started: float) -> CycleReport:
     report.seconds = time.perf_counter() - started
     _close_cycle(engine, report)
     return report

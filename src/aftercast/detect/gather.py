@@ -18,10 +18,10 @@ from aftercast.benchmark_methods import model_name
 from aftercast.config import Config, WindowConfig
 from aftercast.detect.profiles import KEY, with_buckets
 from aftercast.detect.settings import BENCHMARK_PREFIX, bucket_labels
-from aftercast.errors import ConfigError
 from aftercast.periods import periods_by_series
 from aftercast.store.bulk import read_frame, stage_keys
 from aftercast.store.queries import intervals_for
+from aftercast.window_store import find_window
 
 DAY = 86_400
 _PAIR_COLUMNS = (
@@ -42,15 +42,8 @@ class WindowData:
 
 
 def detection_window(config: Config) -> WindowConfig:
-    windows = config.all_windows()
-    name = config.detection.window
-    if name is None:
-        return windows[0]
-    for window in windows:
-        if window.name == name:
-            return window
-    known = ", ".join(w.name for w in windows)
-    raise ConfigError(f"config key detection.window: no window named {name!r} (have {known})")
+    """The window the tests look at: `detection.window`, default the first configured."""
+    return find_window(config, config.detection.window)
 
 
 def _window_pairs(
@@ -100,6 +93,7 @@ def _hits(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
 def window_data(connection: Connection, config: Config, now: int) -> WindowData:
     """The detection window's pairs and hits, split into tested models and the benchmark."""
     models = read_frame(connection, "SELECT id, name FROM models").set_index("id")["name"]
+    models = models.astype(str)
     is_benchmark = models.str.startswith(BENCHMARK_PREFIX)
     wanted = ~is_benchmark | config.detection.include_benchmarks
     wanted |= models == model_name(config.detection.benchmark)

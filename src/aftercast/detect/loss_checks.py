@@ -57,6 +57,26 @@ def _robust(pvalue_hac: np.ndarray, pvalue_plain: np.ndarray) -> np.ndarray:
     return np.fmax(pvalue_hac, pvalue_plain)
 
 
+def _rows(
+    detection: str,
+    keys: pd.DataFrame,
+    n: np.ndarray,
+    statistic: np.ndarray,
+    pvalue: np.ndarray,
+    min_points: int,
+    **columns: object,
+) -> pd.DataFrame:
+    """The common head of every loss finding; p-values of short windows are left out."""
+    head = {
+        "detection": detection,
+        **{k: keys[k].to_numpy() for k in KEY},
+        "n": n,
+        "statistic": statistic,
+        "p_value": np.where(n >= min_points, pvalue, np.nan),
+    }
+    return pd.DataFrame({**head, **columns})
+
+
 def _lag_horizon(horizon: pd.Series, n: np.ndarray) -> np.ndarray:
     """The h of the DM variance: the bucket's largest horizon, at most a third of the points."""
     cap = np.maximum(n // 3, 1)
@@ -91,23 +111,22 @@ def accuracy_findings(
         "MAE is " + pd.Series(ratio).map("{:.2f}".format) + " times the baseline's: check the "
         "model's inputs or retrain it; after a deliberate change, reset the baseline"
     )
-    return pd.DataFrame(
-        {
-            "detection": "accuracy_vs_baseline",
-            **{k: keys[k] for k in KEY},
-            "n": n,
-            "statistic": result.statistic,
-            "p_value": np.where(n >= min_points, pvalue, np.nan),
-            "severity_critical": ratio >= 1.5,
-            "ev_recent_mae": recent_mae,
-            "ev_baseline_mae": baseline_mae,
-            "ev_mae_ratio": ratio,
-            "ev_baseline_targets": (~np.isnan(reference)).sum(axis=1),
-            "ev_baseline_source": keys["source"],
-            "ev_baseline_start": keys["window_start"],
-            "ev_baseline_end": keys["window_end"],
-            "ev_suggested_fix": fix.to_numpy(),
-        }
+    return _rows(
+        "accuracy_vs_baseline",
+        keys,
+        n,
+        result.statistic,
+        pvalue,
+        min_points,
+        severity_critical=ratio >= 1.5,
+        ev_recent_mae=recent_mae,
+        ev_baseline_mae=baseline_mae,
+        ev_mae_ratio=ratio,
+        ev_baseline_targets=(~np.isnan(reference)).sum(axis=1),
+        ev_baseline_source=keys["source"],
+        ev_baseline_start=keys["window_start"],
+        ev_baseline_end=keys["window_end"],
+        ev_suggested_fix=fix.to_numpy(),
     )
 
 
@@ -139,21 +158,20 @@ def benchmark_findings(
         "on the same targets: check the model against recent data, or use the benchmark meanwhile"
     )
     extra = keys[KEY].merge(interval_skill, on=KEY, how="left")
-    return pd.DataFrame(
-        {
-            "detection": "no_better_than_benchmark",
-            **{k: keys[k] for k in KEY},
-            "n": n,
-            "statistic": result.statistic,
-            "p_value": np.where(n >= min_points, pvalue, np.nan),
-            "severity_critical": skill <= -0.2,
-            "ev_benchmark": benchmark,
-            "ev_model_mae": model_mae,
-            "ev_benchmark_mae": benchmark_mae,
-            "ev_skill_mae": skill,
-            **{f"ev_{c}": extra[c].to_numpy() for c in extra.columns if c not in KEY},
-            "ev_suggested_fix": fix.to_numpy(),
-        }
+    return _rows(
+        "no_better_than_benchmark",
+        keys,
+        n,
+        result.statistic,
+        pvalue,
+        min_points,
+        severity_critical=skill <= -0.2,
+        ev_benchmark=benchmark,
+        ev_model_mae=model_mae,
+        ev_benchmark_mae=benchmark_mae,
+        ev_skill_mae=skill,
+        **{f"ev_{c}": extra[c].to_numpy() for c in extra.columns if c not in KEY},
+        ev_suggested_fix=fix.to_numpy(),
     )
 
 
@@ -197,25 +215,24 @@ def bias_findings(
             "error) or retrain"
         )
     )
-    return pd.DataFrame(
-        {
-            "detection": "bias",
-            **{c: keys[c] for c in KEY},
-            "n": n,
-            "statistic": t_test.statistic,
-            "p_value": np.where(n >= min_points, pvalue, np.nan),
-            "condition": chart.first_signal >= 0,
-            "severity_critical": np.abs(mean_z) >= 1.0,
-            "ev_mean_error": np.nanmean(errors, axis=1),
-            "ev_mean_standardised_error": mean_z,
-            "ev_cusum_upper": chart.upper,
-            "ev_cusum_lower": chart.lower,
-            "ev_cusum_signal": chart.first_signal >= 0,
-            "ev_direction": side,
-            "ev_onset_at": onset_at,
-            "ev_tracking_signal": signal.signal,
-            "ev_tracking_signal_outside_limit": signal.flagged,
-            "ev_baseline_error_sd": keys["error_sd"],
-            "ev_suggested_fix": fix.to_numpy(),
-        }
+    return _rows(
+        "bias",
+        keys,
+        n,
+        t_test.statistic,
+        pvalue,
+        min_points,
+        condition=chart.first_signal >= 0,
+        severity_critical=np.abs(mean_z) >= 1.0,
+        ev_mean_error=np.nanmean(errors, axis=1),
+        ev_mean_standardised_error=mean_z,
+        ev_cusum_upper=chart.upper,
+        ev_cusum_lower=chart.lower,
+        ev_cusum_signal=chart.first_signal >= 0,
+        ev_direction=side,
+        ev_onset_at=onset_at,
+        ev_tracking_signal=signal.signal,
+        ev_tracking_signal_outside_limit=signal.flagged,
+        ev_baseline_error_sd=keys["error_sd"],
+        ev_suggested_fix=fix.to_numpy(),
     )
