@@ -1,0 +1,193 @@
+"""Benchmark forecasts: the methods against outside definitions, and the stage in a store.
+
+Outside sources: statsmodels' simple exponential smoothing with smoothing level 1 (which is
+the naive method), the seasonal naive formula of Hyndman and Athanasopoulos, Forecasting:
+Principles and Practice (3rd ed., section 5.2), numpy's quantile (Hyndman and Fan type 7) for
+the intervals, statsmodels' ETSModel for the ETS benchmark, and the open datasets shipped with
+statsmodels (Nile flow, El Nino sea temperature).
+"""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+import statsmodels.api as sm
+from sqlalchemy import Engine
+
+from aftercast.benchmark_methods import benchmark_forecasts, error_quantiles, point_forecasts
+from aftercast.config import Config
+from aftercast.scenario import Scenario, ScenarioSpec, generate
+from aftercast.store.bulk import read_frame
+from aftercast.store.db import make_engine, migrate
+from tests.conftest import make_config
+from tests.test_detect_run_feed import cycle_on, feed_day, load_through
+
+
+def _nile() -> pd.DataFrame:
+    values = sm.datasets.nile.load_pandas().data["volume"].to_numpy(np.float64)
+    return pd.DataFrame({"series_id": 1, "period": np.arange(len(values)), "value": values})
+
+
+def _elnino() -> pd.DataFrame:
+    wide = sm.datasets.elnino.load_pandas().data.drop(columns="YEAR")
+    values = wide.to_numpy(np.float64).ravel()
+    return pd.DataFrame({"series_id": 2, "period": np.arange(len(values)), "value": values})
+
+
+def _requests(series_id: int, issues: list[int], leads: range, season: int) -> pd.DataFrame:
+    rows = [(series_id, p, p - 1 + j, season) for p in issues for j in leads]
+    return pd.DataFrame(rows, columns=["series_id", "issue_period", "target_period", "season"])
+
+
+def test_naive_equals_simple_exponential_smoothing_with_level_one() -> None:
+    from statsmodels.tsa.holtwinters import SimpleExpSmoothing
+
+    history = _nile()
+    requests = _requests(1, [20, 57, 100], range(1, 6), 1)
+    got = point_forecasts("naive", history, requests)
+    expected = []
+    for issue in (20, 57, 100):
+        # statsmodels: SES with alpha = 1 forecasts the last observation at every lead.
+        fit = SimpleExpSmoothing(
+            history["value"].to_numpy()[:issue], initialization_method="known", initial_level=0.0
+        ).fit(smoothing_level=1.0, optimized=False)
+        expected.extend(fit.forecast(5))
+    np.testing.assert_allclose(got, expected)
+
+
+def test_seasonal_naive_follows_the_textbook_formula_on_monthly_data() -> None:
+    history = _elnino()
+    y = history["value"].to_numpy()
+    issues, leads = [30, 131, 500], range(1, 30)
+    got = point_forecasts("seasonal-naive", history, _requests(2, issues, leads, 12))
+    # FPP3 section 5.2: y_hat(T + h | T) = y(T + h - m (k + 1)), k = floor((h - 1) / m).
+    expected = [y[(p - 1) + h - 12 * ((h - 1) // 12 + 1)] for p in issues for h in leads]
+    np.testing.assert_allclose(got, expected)
+
+
+def test_seasonal_naive_skips_a_missing_season_back_to_the_last_known_one() -> None:
+    history = _elnino()
+    y = history["value"].to_numpy()
+    gappy = history.loc[history["period"] != 119]  # December of the tenth year is missing
+    got = point_forecasts("seasonal-naive", gappy, _requests(2, [121], range(11, 12), 12))
+    # Target 131 (a December): period 119 is missing, so the December before, 107, is used.
+    assert got.tolist() == [y[107]]
+
+
+def test_interval_quantiles_equal_numpy_quantiles_of_past_errors() -> None:
+    history = _nile()
+    y = history["value"].to_numpy()
+    issue, lag, window = 80, 3, 25
+    got = error_quantiles(
+        history,
+        _requests(1, [issue], range(lag, lag + 1), 1),
+        np.array([lag]),
+        [0.1, 0.9],
+        window,
+        8,
+    )
+    # The lag-3 naive errors whose period is before the issue period, the latest 25 of them.
+    errors = (y[lag:issue] - y[: issue - lag])[-window:]
+    np.testing.assert_allclose(got.iloc[0].to_numpy(), np.quantile(errors, [0.1, 0.9]))
+
+
+def test_intervals_contain_their_point_and_need_enough_errors() -> None:
+    history = _elnino()
+    requests = _requests(2, [14, 200, 400], range(1, 13), 12)
+    made, intervals = benchmark_forecasts(history, requests, ["seasonal-naive"], [80, 95], 56, 8)
+    joined = intervals.merge(made[["row", "point", "issue_period"]], on="row")
+    assert (joined["lower"] <= joined["point"]).all() and (joined["point"] <= joined["upper"]).all()
+    # At issue period 14 only two seasonal differences are known: fewer than 8, no interval.
+    assert 14 not in set(joined["issue_period"]) and {200, 400} <= set(joined["issue_period"])
+    wide = joined.pivot_table(index="row", columns="level", values=["lower", "upper"])
+    assert (wide["lower"][95] <= wide["lower"][80]).all() and (
+        wide["upper"][95] >= wide["upper"][80]
+    ).all()
+
+
+def test_ets_benchmark_equals_statsmodels_fitted_on_the_known_history() -> None:
+    from statsmodels.tsa.exponential_smoothing.ets import ETSModel
+
+    from aftercast.benchmark_ets import ets_forecasts
+
+    history = _nile()
+    requests = _requests(1, [70], range(1, 4), 1).assign(horizon=0)
+    made, intervals = ets_forecasts(history, requests, [80.0], max_history=200)
+    fit = ETSModel(pd.Series(history["value"].to_numpy()[:70]), error="add").fit(disp=False)
+    frame = fit.get_prediction(start=70, end=72).summary_frame(alpha=0.2)
+    np.testing.assert_allclose(made["point"], frame["mean"], rtol=1e-6)
+    np.testing.assert_allclose(intervals["lower"], frame["pi_lower"], rtol=1e-6)
+
+
+@pytest.fixture
+def small() -> Scenario:
+    return generate(ScenarioSpec(n_series=6, days=20, horizons=5, history_days=21, seed=3))
+
+
+def _benchmark_rows(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(
+            connection,
+            "SELECT s.key, m.name, f.issued_at, f.target_period, f.issue_period, f.point "
+            "FROM forecasts f JOIN series s ON s.id = f.series_id JOIN models m "
+            "ON m.id = f.model_id WHERE m.name LIKE 'benchmark:%' ORDER BY 1, 2, 3, 4",
+        )
+
+
+def test_stage_stores_benchmarks_that_are_matched_like_any_model(
+    engine: Engine, config: Config, small: Scenario
+) -> None:
+    load_through(engine, config, small, 12)
+    report = cycle_on(engine, config, small, 12)
+    assert report.benchmarks == 6 * 13 * 5 * 2  # series x issue days x horizons x methods
+    rows = _benchmark_rows(engine)
+    actuals = small.actuals.assign(
+        period=(small.actuals["observed_at"] - pd.Timestamp(0, tz="UTC")).dt.days
+    ).set_index(["series_id", "period"])["value"]
+    naive = rows.loc[rows["name"] == "benchmark:naive"]
+    # Naive (FPP3 5.2): the latest actual before the issue period.
+    expected = actuals.reindex(
+        list(zip(naive["key"], naive["issue_period"] - 1, strict=True))
+    ).to_numpy()
+    np.testing.assert_allclose(naive["point"], expected)
+    seasonal = rows.loc[rows["name"] == "benchmark:seasonal-naive"]
+    lead = seasonal["target_period"] - seasonal["issue_period"] + 1
+    source = seasonal["target_period"] - 7 * ((lead - 1) // 7 + 1)
+    expected = actuals.reindex(list(zip(seasonal["key"], source, strict=True))).to_numpy()
+    np.testing.assert_allclose(seasonal["point"], expected)
+    with engine.connect() as connection:
+        scored = read_frame(
+            connection,
+            "SELECT m.name, COUNT(*) AS n FROM pairs p JOIN models m ON m.id = p.model_id "
+            "WHERE m.name LIKE 'benchmark:%' GROUP BY m.name",
+        )
+    assert set(scored["name"]) == {"benchmark:naive", "benchmark:seasonal-naive"}
+    again = cycle_on(engine, config, small, 12)
+    assert again.benchmarks == 0  # nothing new: incremental
+
+
+def test_benchmarks_do_not_depend_on_arrival_order(
+    config: Config, engine: Engine, small: Scenario, tmp_path: Path
+) -> None:
+    load_through(engine, config, small, 12)
+    cycle_on(engine, config, small, 12)
+    other_url = f"sqlite:///{tmp_path / 'other.db'}"
+    other = make_engine(other_url)
+    migrate(other)
+    other_config = make_config(other_url)
+    # Forecasts first, day by day with no actuals at all (no benchmark can be made), then every
+    # actual at once: the benchmarks issued after each newly known period are made again.
+    forecasts_only = replace(small, actuals=small.actuals.iloc[:0])
+    load_through(other, other_config, forecasts_only, -1)
+    for day in range(13):
+        feed_day(other, other_config, forecasts_only, day)
+        cycle_on(other, other_config, small, day)
+    assert _benchmark_rows(other).empty
+    load_through(other, other_config, small, 12)
+    cycle_on(other, other_config, small, 12)
+    pd.testing.assert_frame_equal(_benchmark_rows(engine), _benchmark_rows(other))
+    other.dispose()
