@@ -6,10 +6,11 @@ command of that replay; `run_step` runs it in this process.
 
 Two runs of the same inputs must end with the same data even when one of them crashed, was
 retried or was split between replicas. Surrogate keys and wall-clock stamps legitimately differ
-(PostgreSQL sequences do not roll back; a retried cycle gets a new cycle id), so each table is
-read with its integer references replaced by natural keys (series key, model name, the
-forecast's (series, model, issued_at, target_at), an alert's fingerprint, a notification's id),
-volatile columns dropped, and rows sorted. Tables a given version of the store lacks are skipped.
+(PostgreSQL sequences do not roll back; a retried cycle gets a new cycle id; notification ids are
+random), so each table is read with its integer references replaced by natural keys (series key,
+model name, the forecast's (series, model, issued_at, target_at), an alert's fingerprint, a
+notification's channel, route, kind and cycle clock), volatile columns dropped, and rows
+sorted. Tables a given version of the store lacks are skipped.
 """
 
 from __future__ import annotations
@@ -101,6 +102,11 @@ VOLATILE = {
     "claimed_until",
     "last_attempt_at",
     "delivered_at",
+    # Delivery progress: a crashed send is retried, so its attempts and schedule differ.
+    "attempts",
+    "due_at",
+    "detail",
+    "notification_id",  # a random id per message; compared through what the message is
 }
 
 
@@ -119,9 +125,14 @@ def _names(engine: Engine) -> dict[str, pd.Series]:
             else pd.DataFrame({"id": [], "fingerprint": []})
         )
         outbox = (
-            read_frame(connection, "SELECT id, notification_id FROM notification_outbox")
+            read_frame(
+                connection,
+                "SELECT o.id, o.channel || '|' || o.route || '|' || o.kind || '|' || "
+                "CAST(c.now AS VARCHAR(20)) AS label FROM notification_outbox o "
+                "LEFT JOIN cycles c ON c.id = o.cycle_id",
+            )
             if "notification_outbox" in present
-            else pd.DataFrame({"id": [], "notification_id": []})
+            else pd.DataFrame({"id": [], "label": []})
         )
     series_key = pd.Series(series["key"].to_numpy(), index=series["id"].to_numpy())
     model_name = pd.Series(models["name"].to_numpy(), index=models["id"].to_numpy())
@@ -139,7 +150,7 @@ def _names(engine: Engine) -> dict[str, pd.Series]:
         "model_id": model_name,
         "forecast_id": pd.Series(forecast_key.to_numpy(), index=forecasts["id"].to_numpy()),
         "alert_id": pd.Series(alerts["fingerprint"].to_numpy(), index=alerts["id"].to_numpy()),
-        "outbox_id": pd.Series(outbox["notification_id"].to_numpy(), index=outbox["id"].to_numpy()),
+        "outbox_id": pd.Series(outbox["label"].to_numpy(), index=outbox["id"].to_numpy()),
     }
 
 

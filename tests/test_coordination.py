@@ -37,9 +37,11 @@ from aftercast.errors import AftercastError
 from aftercast.ingest import ingest_path
 from aftercast.scenario import series_ids
 from aftercast.sources.base import Schedule
+from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate, write
+from aftercast.store.leases import FLEET
 from tests.conftest import make_config
-from tests.replay import assert_same_store, daily_steps, run_step, store_snapshot
+from tests.replay import Step, assert_same_store, daily_steps, run_step, store_snapshot
 
 QUICK = CoordinationConfig(shards=6, lease_seconds=2)
 
@@ -50,6 +52,10 @@ def holders(engine: Engine) -> dict[int, str | None]:
             text("SELECT shard, holder FROM shard_leases WHERE shard >= 0")
         ).all()
     return {int(s): h for s, h in rows}
+
+
+def steps_at(steps: list[Step]) -> list[int]:
+    return [s.now for s in steps if s.now is not None]
 
 
 def wait_for_expiry(seconds: int = QUICK.lease_seconds) -> None:
@@ -199,7 +205,7 @@ def test_cron_slots_are_the_latest_fire_time() -> None:
 def test_one_coordinated_replica_equals_plain_cycles(config: Config, tmp_path: Path) -> None:
     """Two replicas taking turns shard by shard end with the store a plain run gives.
 
-    The fleet stages run once per slot, when no shard is behind any more.
+    The fleet-wide stages (windows, detection, alerts) run once per slot, after every shard.
     """
     steps = daily_steps(tmp_path / "feed")
     coordinated = make_engine(config.store.url)
@@ -209,16 +215,6 @@ def test_one_coordinated_replica_equals_plain_cycles(config: Config, tmp_path: P
     migrate(plain)
     plain_config = make_config(plain_url)
     replicas = [Coordinator(coordinated, QUICK, "left"), Coordinator(coordinated, QUICK, "right")]
-    fleet_runs: list[tuple[int, int]] = []
-
-    def fleet_stages(engine: Engine, _config: Config, slot: int) -> None:
-        with engine.connect() as connection:
-            behind = connection.execute(
-                text("SELECT COUNT(*) FROM shard_leases WHERE shard >= 0 AND cycle_now < :s"),
-                {"s": slot},
-            ).scalar_one()
-        fleet_runs.append((slot, behind))
-
     for step in steps:
         run_step(plain, plain_config, step)
         if step.kind != "cycle":
@@ -226,7 +222,7 @@ def test_one_coordinated_replica_equals_plain_cycles(config: Config, tmp_path: P
             continue
         assert step.now is not None
         for replica in replicas + replicas:  # the second round: the shards released meanwhile
-            coordinated_cycle(coordinated, config, replica, step.now, fleet_stages)
+            coordinated_cycle(coordinated, config, replica, step.now)
         with coordinated.connect() as connection:
             done = (
                 connection.execute(text("SELECT cycle_now FROM shard_leases WHERE shard >= 0"))
@@ -236,11 +232,12 @@ def test_one_coordinated_replica_equals_plain_cycles(config: Config, tmp_path: P
         assert set(done) == {step.now}
     assert_same_store(store_snapshot(coordinated), store_snapshot(plain))
     with coordinated.connect() as connection:
-        runs = connection.execute(
-            text("SELECT shard, now, COUNT(*) FROM shard_cycles GROUP BY shard, now")
-        ).all()
-    assert {count for _, _, count in runs} == {1}  # every shard cycled once per slot
-    slots = [s.now for s in steps if s.kind == "cycle"]
-    assert fleet_runs == [(slot, 0) for slot in slots]  # once per slot, after every shard
+        log = read_frame(connection, "SELECT id, shard, now, finished_at FROM shard_cycles")
+    assert log["finished_at"].notna().all()
+    assert (log.groupby(["shard", "now"]).size() == 1).all()  # each shard and the fleet once
+    assert len(log) == (QUICK.shards + 1) * len(steps_at(steps))
+    fleet = log[log["shard"] == FLEET].set_index("now")["id"]
+    last_shard = log[log["shard"] >= 0].groupby("now")["id"].max()
+    assert (fleet > last_shard.reindex(fleet.index)).all()  # the fleet after every shard
     coordinated.dispose()
     plain.dispose()

@@ -5,9 +5,9 @@ restarts. A replica holds shards through leases (`store.leases`: holder, expiry 
 database's clock, fencing token): it takes its fair share (shards / live replicas) of those that
 are free or expired, renews them while it works and releases what exceeds its share afterwards.
 A shard is cycled once per scheduled slot: its lease row records the slot its last cycle
-finished. Stages that look at the whole fleet at once (false-discovery control across all
-series) can run as `fleet_stages`, once per slot, by whichever replica takes the FLEET lease
-after every shard has finished that slot. While a shard cycle runs, every write transaction of
+finished. The stages that look at the whole fleet at once (windows, false-discovery control
+across all series, alerts, delivery) run once per slot, by whichever replica takes the FLEET
+lease after every shard has finished that slot. While a shard cycle runs, every write transaction of
 its thread first checks that our leases still carry our tokens, locking those rows on
 PostgreSQL until commit: a replica that stalled past its lease and lost a shard has its next
 write refused, never applied on top of the new holder's. A replica killed mid-cycle simply
@@ -25,10 +25,10 @@ import socket
 import threading
 import time
 import uuid
-from collections.abc import Callable, Collection, Iterator
+from collections.abc import Collection, Iterator
 from contextlib import contextmanager
 from contextvars import ContextVar
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, datetime, timedelta
 from typing import TYPE_CHECKING, Any
 
@@ -284,57 +284,84 @@ class Coordinator:
             leases.record_finish(connection, self.name, shards, slot, cycle_id, now)
 
 
-FleetStages = Callable[["Engine", "Config", int], Any]
+@dataclass
+class ReplicaCycle:
+    """What one `coordinated_cycle` call did: the shards it cycled and whether it ran the fleet."""
+
+    slot: int
+    shards: list[int] = field(default_factory=list)
+    shard_report: CycleReport | None = None  # benchmarks and matching of those shards
+    fleet_report: CycleReport | None = None  # the fleet-wide stages, when it was our turn
+    lost: str | None = None  # why it stopped early: a lease taken over meanwhile
+
+    def as_json(self) -> dict[str, Any]:
+        reports = {"shard_report": self.shard_report, "fleet_report": self.fleet_report}
+        return {
+            "slot": self.slot,
+            "shards": self.shards,
+            "lost": self.lost,
+            **{k: r.as_json() if r else None for k, r in reports.items()},
+        }
 
 
 def coordinated_cycle(
-    engine: Engine,
-    config: Config,
-    coordinator: Coordinator,
-    now: int | None = None,
-    fleet_stages: FleetStages | None = None,
-) -> CycleReport | None:
-    """Cycle the shards this replica holds that are due at slot `now`, then maybe the fleet.
+    engine: Engine, config: Config, coordinator: Coordinator, now: int | None = None
+) -> ReplicaCycle:
+    """One replica's turn: cycle its shards due at slot `now`, then the fleet if it is last.
 
-    `now` defaults to the latest slot of `schedule.cycle`. `fleet_stages(engine, config, now)`,
-    when given, runs once per slot on one replica, after every shard has finished that slot.
-    Returns the shard cycle's report, or None when nothing was due or a lease was lost
-    mid-cycle (the new holder finishes that work).
+    `now` defaults to the latest slot of `schedule.cycle`. Shards run benchmarks and matching
+    for their series; once every shard has finished the slot, exactly one replica runs the
+    stages that look at every series at once (sources, windows, detection, alerts, delivery).
+    Call it every `coordination.renew_seconds` or so: it does nothing when nothing is due.
     """
     coordinator.acquire()
     slot = latest_slot(config.schedule.cycle, time.time()) if now is None else now
-    report = None
+    done = ReplicaCycle(slot)
     try:
-        report = _cycle_shards(engine, config, coordinator, slot)
-        if fleet_stages is not None and coordinator.fleet_turn(slot):
-            with coordinator.fenced([leases.FLEET]):
-                coordinator.begin_cycle([leases.FLEET], slot)
-                fleet_stages(engine, config, slot)
-                coordinator.finish_cycle([leases.FLEET], slot, None)
-            coordinator.release([leases.FLEET])
+        _cycle_shards(engine, config, coordinator, done)
+        if coordinator.fleet_turn(slot):
+            _cycle_fleet(engine, config, coordinator, done)
     except LeaseLost as exc:
         log_event(log, "shard lease lost", level=logging.WARNING, detail=str(exc))
+        done.lost = str(exc)
         coordinator.renew()
-        return None
+        return done
     coordinator.rebalance()
-    return report
+    return done
 
 
 def _cycle_shards(
-    engine: Engine, config: Config, coordinator: Coordinator, slot: int
-) -> CycleReport | None:
+    engine: Engine, config: Config, coordinator: Coordinator, done: ReplicaCycle
+) -> None:
     from aftercast.cycle import run_cycle  # the cycle imports the config, which imports us
 
-    due = coordinator.due(slot)
+    due = coordinator.due(done.slot)
     if not due:
-        return None
+        return
     with coordinator.fenced(due):
-        coordinator.begin_cycle(due, slot)
+        coordinator.begin_cycle(due, done.slot)
         series = None
         if len(due) < coordinator.shards:
             with engine.connect() as connection:
                 series = series_in_shards(connection, due, coordinator.shards)
-        report = run_cycle(engine, config, slot, series_ids=series)
-        coordinator.finish_cycle(due, slot, report.cycle_id)
-    log_event(log, "shards cycled", replica=coordinator.name, shards=due, now=slot)
-    return report
+        report = run_cycle(engine, config, done.slot, series_ids=series, fleet=False)
+        coordinator.finish_cycle(due, done.slot, report.cycle_id)
+    done.shards, done.shard_report = due, report
+    log_event(log, "shards cycled", replica=coordinator.name, shards=due, now=done.slot)
+
+
+def _cycle_fleet(
+    engine: Engine, config: Config, coordinator: Coordinator, done: ReplicaCycle
+) -> None:
+    from aftercast.cycle import run_cycle
+
+    fleet = [leases.FLEET]
+    with coordinator.fenced(fleet):
+        coordinator.begin_cycle(fleet, done.slot)
+        with engine.connect() as connection:
+            touched = leases.keys_scored_at(connection, done.slot)
+        nothing = np.empty(0, dtype=np.int64)  # every shard has matched already
+        report = run_cycle(engine, config, done.slot, series_ids=nothing, touched=touched)
+        coordinator.finish_cycle(fleet, done.slot, report.cycle_id)
+    coordinator.release(fleet)
+    done.fleet_report = report

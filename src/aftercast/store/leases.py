@@ -164,3 +164,12 @@ def record_finish(
         ),
         params,
     )
+
+
+def keys_scored_at(connection: Connection, now: int) -> pd.DataFrame:
+    """(series_id, model_id) of the pairs scored by cycles at `now`: what the shards touched."""
+    return read_frame(
+        connection,
+        "SELECT DISTINCT series_id, model_id FROM pairs WHERE scored_at = :now",
+        {"now": now},
+    ).astype("int64")

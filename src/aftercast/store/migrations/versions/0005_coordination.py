@@ -1,4 +1,6 @@
-"""Coordination of several replicas: shard_leases, replicas, shard_cycles.
+"""Coordination of several replicas: shard_leases, replicas, shard_cycles; pairs by scored_at.
+
+The fleet-wide stages of a slot find the keys the shards touched by the time they were scored.
 
 Revision ID: 0005_coordination
 Revises: 0001
@@ -18,8 +20,10 @@ depends_on = None
 def upgrade() -> None:
     tables = [metadata.tables[name] for name in COORDINATION_TABLES]
     metadata.create_all(bind=op.get_bind(), tables=tables)
+    op.create_index("ix_pairs_scored_at", "pairs", ["scored_at"])
 
 
 def downgrade() -> None:
+    op.drop_index("ix_pairs_scored_at", table_name="pairs")
     tables = [metadata.tables[name] for name in COORDINATION_TABLES]
     metadata.drop_all(bind=op.get_bind(), tables=tables)
