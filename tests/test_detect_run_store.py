@@ -1,0 +1,135 @@
+"""The detection stage end to end on a store: findings, `alerts --json`, freshness checks.
+
+The invented bakery scenario is fed day by day; a level shift of three noise standard
+deviations (the scenario's own definition) must come out as flagged findings with their
+evidence, healthy series must not, and `alerts --json` must carry the CONTRACT fields with
+`opened_at` at the first cycle of the current run of flags (checked against the stored rows).
+Stalled forecasts and missing actuals are facts counted in periods (common practice).
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import replace
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from sqlalchemy import Engine
+
+from aftercast.cli import main
+from aftercast.config import Config
+from aftercast.periods import to_iso
+from aftercast.scenario import Scenario, ScenarioSpec, generate
+from aftercast.store.bulk import read_frame
+from tests.conftest import make_config
+from tests.test_detect_run_feed import cycle_on, feed_day, load_through
+
+SHIFTED = "shop-001/white"
+SECTIONS = {"window": {"days": 14}, "baseline": {"days": 14}}
+
+
+@pytest.fixture
+def scenario() -> Scenario:
+    spec = ScenarioSpec(
+        n_series=24, days=40, horizons=3, history_days=21, seed=5,
+        models=("shop-planner",), degraded={SHIFTED: ("level_shift", 30)},
+    )  # fmt: skip
+    return generate(spec)
+
+
+@pytest.fixture
+def detecting(store_url: str) -> Config:
+    return make_config(store_url, **SECTIONS)
+
+
+def _run(engine: Engine, config: Config, scenario: Scenario, first: int, last: int) -> None:
+    load_through(engine, config, scenario, first - 1)
+    for day in range(first, last + 1):
+        feed_day(engine, config, scenario, day)
+        cycle_on(engine, config, scenario, day)
+
+
+def _flags(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(
+            connection,
+            "SELECT f.cycle_id, f.now, f.detection, s.key, f.bucket, f.flagged, f.evidence "
+            "FROM findings f JOIN series s ON s.id = f.series_id",
+        )
+
+
+def test_a_level_shift_is_flagged_with_evidence_and_listed_by_alerts_json(
+    engine: Engine,
+    detecting: Config,
+    scenario: Scenario,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """Healthy series are never flagged; `alerts --json` rows open where their run starts."""
+    _run(engine, detecting, scenario, 16, 39)
+    found = _flags(engine)
+    flagged = found.loc[found["flagged"] == 1]
+    assert set(flagged["key"]) == {SHIFTED}
+    assert {"coverage_low", "bias", "accuracy_vs_baseline"} <= set(flagged["detection"])
+    first = pd.to_datetime(flagged["now"].min(), unit="s", utc=True)
+    assert first >= pd.Timestamp(scenario.spec.start, tz="UTC") + pd.Timedelta(days=30)
+    evidence = json.loads(flagged.loc[flagged["detection"] == "bias", "evidence"].iloc[-1])
+    assert evidence["direction"] == "under-forecasting"  # actuals jumped above the forecasts
+    assert {"statistic", "p_value", "window", "suggested_fix"} <= set(evidence)
+    with engine.connect() as connection:
+        summary = read_frame(
+            connection, "SELECT cycle_id, COUNT(*) AS n FROM detections GROUP BY 1"
+        )
+    assert (summary["n"] == 7).all()  # one row per detection and cycle
+    _check_alerts_json(engine, detecting, tmp_path, capsys)
+
+
+def _check_alerts_json(
+    engine: Engine, detecting: Config, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "aftercast.yaml"
+    path.write_text(json.dumps({"store": {"url": detecting.store.url}, **SECTIONS}))
+    capsys.readouterr()
+    assert main(["--config", str(path), "alerts", "--json"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert rows and {r["series_id"] for r in rows} == {SHIFTED}
+    fields = {"series_id", "model", "horizon", "rule", "state", "active", "severity",
+              "opened_at", "evidence"}  # fmt: skip
+    assert all(fields <= set(r) for r in rows)
+    assert all(r["state"] == "raised" and r["active"] is True for r in rows)
+    found = _flags(engine)
+    cycles = sorted(found["cycle_id"].unique())
+    for row in rows:
+        mine = found.loc[(found["detection"] == row["rule"]) & (found["bucket"] == row["horizon"])
+                         & (found["flagged"] == 1)]  # fmt: skip
+        run = sorted(mine["cycle_id"])
+        start = run[-1]
+        # Walk back over consecutive detection cycles while the key stayed flagged.
+        while cycles.index(start) > 0 and cycles[cycles.index(start) - 1] in run:
+            start = cycles[cycles.index(start) - 1]
+        assert row["opened_at"] == to_iso(int(mine.loc[mine["cycle_id"] == start, "now"].iloc[0]))
+
+
+def test_stalled_forecasts_and_overdue_actuals_are_flagged(
+    engine: Engine, config: Config, scenario: Scenario
+) -> None:
+    quiet = "shop-002/rye"
+    spec = replace(scenario.spec, degraded={"shop-003/rye": ("stall", 20)})
+    stalled = generate(spec)
+    # Actuals of `quiet` stop arriving after day 20.
+    actuals = stalled.actuals
+    cut = pd.Timestamp(spec.start, tz="UTC") + pd.Timedelta(days=20)
+    stalled = replace(stalled, actuals=actuals.loc[(actuals["series_id"] != quiet)
+                                                   | (actuals["observed_at"] <= cut)])  # fmt: skip
+    load_through(engine, config, stalled, 17)
+    for day in range(18, 25):
+        feed_day(engine, config, stalled, day)
+        cycle_on(engine, config, stalled, day)
+    found = _flags(engine)
+    last = found.loc[(found["cycle_id"] == found["cycle_id"].max()) & (found["flagged"] == 1)]
+    assert set(last.loc[last["detection"] == "forecasts_stalled", "key"]) == {"shop-003/rye"}
+    assert set(last.loc[last["detection"] == "actuals_overdue", "key"]) == {quiet}
+    overdue = json.loads(last.loc[last["detection"] == "actuals_overdue", "evidence"].iloc[0])
+    # Day 24: targets from day 21 on are missing; overdue once 2 periods have passed.
+    assert overdue["periods_late"] == 3 and overdue["latest_actual_at"].startswith("2026-06-21")
