@@ -81,9 +81,12 @@ def _windows(connection: Connection, config: Config, keys: pd.DataFrame, now: in
         span_by_key = np.where(dated, fixed[1] - fixed[0], span)
     else:
         span_by_key = np.full(len(found), span)
-    end = np.maximum(start + span_by_key, now - settle)
-    found["window_start"] = np.maximum(start, end - span_by_key).astype(np.int64)
-    found["window_end"] = end.astype(np.int64)
+    found["window_start"] = start.astype(np.int64)
+    found["window_end"] = (start + span_by_key).astype(np.int64)
+    # For buckets that had too few targets then: the latest span that has settled by now.
+    late_end = np.maximum(start + span_by_key, now - settle)
+    found["late_start"] = np.maximum(start, late_end - span_by_key).astype(np.int64)
+    found["late_end"] = late_end.astype(np.int64)
     found["ready"] = start + span_by_key + settle <= now
     return found
 
@@ -137,7 +140,17 @@ def pending_baselines(
     windows = windows.loc[windows["ready"]]
     if windows.empty:
         return pd.DataFrame(columns=SUMMARY_COLUMNS), pd.DataFrame()
-    return _window_summaries(connection, config, windows, wanted)
+    summary, losses = _window_summaries(connection, config, windows, wanted)
+    short = wanted[KEY].merge(summary[KEY], on=KEY, how="left", indicator=True)
+    short = short.loc[short["_merge"] == "left_only", KEY]
+    later = windows.loc[windows["late_end"] > windows["window_end"]].merge(
+        short[["series_id", "model_id"]].drop_duplicates(), on=["series_id", "model_id"]
+    )
+    if later.empty:
+        return summary, losses
+    later = later.assign(window_start=later["late_start"], window_end=later["late_end"])
+    more, more_losses = _window_summaries(connection, config, later, short)
+    return pd.concat([summary, more], ignore_index=True), pd.concat([losses, more_losses])
 
 
 def store_baselines(

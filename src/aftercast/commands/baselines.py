@@ -87,11 +87,11 @@ def cmd_reset(args: argparse.Namespace) -> int:
     engine = open_store(config)
     with engine.connect() as connection:
         keys = resolve_keys(connection, args.series, args.model)
-    now = int(time.time())
+    now = _instant(args.at, "--at", int(time.time()))
     dropped = reset_baselines(engine, keys, args.reason, now, args.by or getpass.getuser())
     print(
         f"reset {len(keys)} series/model pair(s), discarding {dropped} baseline(s); "
-        "new ones collect from now"
+        f"new ones collect from {to_iso(now)}"
     )
     return 0
 
@@ -151,6 +151,7 @@ def register(commands: Any) -> None:
     reset.add_argument("--all", action="store_true", help="every series and model")
     reset.add_argument("--reason", default="", help="why (kept in the reset log)")
     reset.add_argument("--by", help="who resets (default: your login name)")
+    reset.add_argument("--at", metavar="ISO", help="new baselines collect from here (default: now)")
     reset.set_defaults(handler=cmd_reset)
     seed = actions.add_parser("seed", help="baselines from a backtest run's pairs")
     seed.add_argument("--run", type=int, required=True, metavar="ID", help="backtest run id")
