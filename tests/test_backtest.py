@@ -84,5 +84,5 @@ def test_command_prints_json_and_refuses_impossible_folds(
     assert main(["--config", str(path), "backtest", "--json", "--horizon", "7"]) == 0
     out = capsys.readouterr()
     assert json.loads(out.out)["folds"] == 5
-    assert main(["--config", str(path), "backtest", "--folds", "50"]) == 2
+    assert main(["--config", str(path), "backtest", "--horizon", "60"]) == 2
     assert "no series has enough history" in capsys.readouterr().err
