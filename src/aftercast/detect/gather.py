@@ -80,14 +80,17 @@ def _window_pairs(
     return pairs.merge(latest, on=["series_id", "model_id", "target_period"])
 
 
+_HIT_COLUMNS = ["forecast_id", "level", "lower", "upper", "hit", "width", "interval_score"]
+
+
 def _hits(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
-    if pairs.empty:
-        return pd.DataFrame(
-            columns=["forecast_id", "level", "lower", "upper", "hit", "interval_score"]
-        )
-    intervals = intervals_for(connection, pairs["forecast_id"])
     columns = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at", "actual"]
-    return intervals.merge(pairs[columns], on="forecast_id")
+    if pairs.empty:
+        # Same columns as a full answer, so later merges need no special case.
+        extra = [c for c in pairs.columns if c in columns and c != "forecast_id"]
+        return pd.DataFrame(columns=[*_HIT_COLUMNS, *extra])
+    intervals = intervals_for(connection, pairs["forecast_id"])
+    return intervals.merge(pairs[[c for c in columns if c in pairs.columns]], on="forecast_id")
 
 
 def window_data(connection: Connection, config: Config, now: int) -> WindowData:
