@@ -55,7 +55,7 @@ ALERT_COLUMNS = [
     "evidence",
 ]
 # Taken from this cycle's evaluation when there is one, else kept from the stored alert.
-_LATEST = ["rule", "series_id", "model_id", "horizon", "severity", "statistic", "p_value"]
+_LATEST = ["rule", "series_id", "model_id", "horizon", "statistic", "p_value"]
 _LATEST_OBJECTS = ["summary", "evidence"]
 
 
@@ -107,6 +107,9 @@ def advance(
     for column in _LATEST + _LATEST_OBJECTS:
         frame[column] = latest[column].where(seen, frame[column])
     met = latest["met"].astype("boolean").fillna(False).to_numpy(dtype=bool)
+    # An alert keeps the severity of the problem, not of the quiet cycles that clear it.
+    frame["severity"] = latest["severity"].where(met, cur["severity"].reindex(keys))
+    frame["severity"] = frame["severity"].fillna(latest["severity"])
     settings = _settings(frame["rule"], latest, parameters)
 
     prev = frame["state"].fillna("").to_numpy(dtype=object)

@@ -95,6 +95,10 @@ def apply_findings(
         evaluated["fingerprint"] = fingerprint(
             evaluated["rule"], evaluated["series_id"], evaluated["model_id"], evaluated["horizon"]
         )
+        # One finding per fingerprint is the detect stage's contract; should two ever come,
+        # the one that meets the rule (then the surest) speaks for the alert.
+        evaluated = evaluated.sort_values(["met", "p_value"], ascending=[False, True])
+        evaluated = evaluated.drop_duplicates("fingerprint").reset_index(drop=True)
         evaluated["summary"] = [
             summary_line(str(d), e, s, p, n)
             for d, e, s, p, n in zip(

@@ -34,7 +34,7 @@ def _coverage(e: Evidence, n: float | None) -> str | None:
     if coverage is None or level is None:
         return None
     count = _number(e.get("pairs")) or n
-    outcomes = f"the last {count:.0f} outcomes" if count else "recent outcomes"
+    outcomes = f"{count:.0f} recent forecasts" if count else "recent forecasts"
     return f"The {_percent(level):g}% interval covered {_percent(coverage):.0f}% of {outcomes}"
 
 
@@ -100,7 +100,7 @@ def summary_line(
     """The sentence a message shows for an alert.
 
     >>> summary_line("coverage_low", {"coverage": 0.55, "level": 80}, None, 1e-6, 40)
-    'The 80% interval covered 55% of the last 40 outcomes (p = 1e-06).'
+    'The 80% interval covered 55% of 40 recent forecasts (p = 1e-06).'
     >>> summary_line("bias", {}, 5.2, None)
     'Errors keep one sign (CUSUM or tracking signal) (statistic 5.2).'
     """
