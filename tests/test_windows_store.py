@@ -14,12 +14,10 @@ import uuid
 from collections.abc import Callable, Iterator
 from typing import Any
 
-import numpy as np
 import pandas as pd
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
-from sklearn import metrics
 from sqlalchemy import Engine, create_engine, text
 
 from aftercast.config import Config
@@ -159,7 +157,13 @@ steps = st.lists(
 )
 
 
-@settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+# Few, small examples keep it fast; no shrinking, which would replay whole stores for minutes.
+@settings(
+    max_examples=8,
+    deadline=None,
+    phases=[Phase.explicit, Phase.reuse, Phase.generate],
+    suppress_health_check=[HealthCheck.function_scoped_fixture],
+)
 @given(plan=steps)
 def test_incremental_windows_equal_full_recomputation(
     new_store: Callable[[], str], plan: list[tuple[Any, ...]]
@@ -167,7 +171,8 @@ def test_incremental_windows_equal_full_recomputation(
     engine, config = open_store(new_store(), **WINDOWS)
     try:
         # The clock then moves on and back with nothing new: only the window edges move.
-        for step in [*plan, ("cycle", 10, 12), ("cycle", 11, 23), ("cycle", 13, 0), ("cycle", 9, 7)]:
+        trailing = [("cycle", 10, 12), ("cycle", 11, 23), ("cycle", 13, 0), ("cycle", 9, 7)]
+        for step in [*plan, *trailing]:
             if step[0] == "actuals":
                 ingest_records(engine, config, "actuals", actual_rows(*step[1:]), "test")
             elif step[0] == "forecasts":

@@ -27,8 +27,8 @@ from sqlalchemy import BigInteger, Column, Connection, Engine, Float, MetaData, 
 
 from aftercast.config import Config, WindowConfig
 from aftercast.periods import to_iso
-from aftercast.store.bulk import insert_frame, read_frame
-from aftercast.window_store import is_current, rows_for_page
+from aftercast.store.bulk import insert_frame
+from aftercast.window_store import is_current, rows_for_page, series_pages
 from aftercast.windows import horizon_rank, measure_columns
 
 MEASURES = ["n", "me", "mae", "mse", "rmse", "mape", "smape", "wape", "mase"]
@@ -150,16 +150,7 @@ def _series_pages(
 ) -> Iterator[pd.DataFrame]:
     """Pages of (id, key) of the series matching the pattern and labels, in key order."""
     pattern = re.compile(translate(query.series)) if query.series else None
-    after = ""
-    while True:
-        page = read_frame(
-            connection,
-            "SELECT id, key, labels FROM series WHERE key > :after ORDER BY key LIMIT :n",
-            {"after": after, "n": size},
-        )
-        if page.empty:
-            return
-        after = str(page["key"].iloc[-1])
+    for page in series_pages(connection, size, by="key"):
         keep = np.ones(len(page), dtype=bool)
         if pattern is not None:
             keep &= page["key"].str.match(pattern).to_numpy(bool)

@@ -158,18 +158,20 @@ def _write_mark(connection: Connection, window: WindowConfig, now: int, cycle_id
     )
 
 
-def _series_id_pages(connection: Connection, size: int) -> Iterator[pd.DataFrame]:
-    """Pages of (id, key) of all series in id order (keyset paging)."""
-    after = -1
+def series_pages(connection: Connection, size: int, by: str = "id") -> Iterator[pd.DataFrame]:
+    """Pages of (id, key, labels) of all series, in `by` order ('id' or 'key'), by keyset."""
+    if by not in ("id", "key"):
+        raise ValueError("series pages go by 'id' or 'key'")
+    after: int | str = -1 if by == "id" else ""
     while True:
         page = read_frame(
             connection,
-            "SELECT id, key FROM series WHERE id > :after ORDER BY id LIMIT :n",
+            f"SELECT id, key, labels FROM series WHERE {by} > :after ORDER BY {by} LIMIT :n",
             {"after": after, "n": size},
         )
         if page.empty:
             return
-        after = int(page["id"].iloc[-1])
+        after = int(page["id"].iloc[-1]) if by == "id" else str(page["key"].iloc[-1])
         yield page
 
 
@@ -184,7 +186,7 @@ def _refresh_window(
     if keys is None:
         delete_stored(connection, window.name, None)
         count = 0
-        for page in _series_id_pages(connection, PAGE_SERIES):
+        for page in series_pages(connection, PAGE_SERIES):
             ids = pd.DataFrame({"series_id": page["id"].to_numpy()})
             sums = compute_sums(connection, window, now, ids)
             store_sums(connection, window.name, sums)
@@ -267,7 +269,7 @@ def iter_windows(
     window = find_window(config, window_name)
     with engine.connect() as connection:
         stored = is_current(connection, window, now)
-        for page in _series_id_pages(connection, page_series):
+        for page in series_pages(connection, page_series):
             rows = rows_for_page(connection, config.horizon_buckets, window, now, page, stored)
             if len(rows):
                 yield rows
