@@ -21,6 +21,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import pandas as pd
 import pytest
 from sqlalchemy import Engine
 from standardwebhooks import Webhook
@@ -283,3 +284,38 @@ def test_secrets_never_reach_logs_output_or_the_store(
             assert secret not in text, where
         assert secret not in stored
     assert "token *** rejected" in log.getvalue()  # the receiver's echo, scrubbed
+
+
+def test_dead_smtp_server_does_not_stop_the_cycle(
+    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    port = free_port()  # nothing listens there
+    engine, _ = queue_one(
+        sqlite_url,
+        [
+            {
+                "name": "oncall-mail",
+                "type": "email",
+                "host": LOOPBACK,
+                "port": port,
+                "security": "none",
+                "sender": "aftercast@example.test",
+                "to": ["oncall@example.test"],
+            }
+        ],
+    )
+    path = tmp_path / "c.yaml"
+    path.write_text(
+        f"store:\n  url: {sqlite_url}\nchannels:\n  - {{name: oncall-mail, type: email, "
+        f"host: {LOOPBACK}, port: {port}, security: none, sender: aftercast@example.test, "
+        "to: [oncall@example.test]}\n"
+    )
+    capsys.readouterr()
+    now = pd.Timestamp(NOW + 3600, unit="s", tz="UTC").isoformat()
+    assert main(["--config", str(path), "cycle", "--json", "--now", now]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["stages"]["notify"] >= 0  # the cycle ran to its last stage
+    assert (report["delivery"]["attempted"], report["delivery"]["retrying"]) == (1, 1)
+    assert "connection refused" in report["delivery"]["failures"][0]
+    row = outbox(engine).iloc[0]
+    assert (row["status"], int(row["attempts"])) == ("pending", 1)
