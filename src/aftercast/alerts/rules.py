@@ -270,7 +270,7 @@ def explain_rule(rule: RuleConfig) -> str:
     if rule.horizons:
         scope.append("horizon buckets " + ", ".join(rule.horizons))
     parts.append(" (" + "; ".join(scope) + ")" if scope else " (every series and model)")
-    cycles = "cycle" if rule.raise_after == 1 else f"{rule.raise_after} consecutive cycles"
+    cycles = "one cycle" if rule.raise_after == 1 else f"{rule.raise_after} consecutive cycles"
     parts.append(f", raised after {cycles}")
     parts.append(f", cleared after {rule.clear_after} without")
     severity = rule.severity or "as the detection grades it"

@@ -235,6 +235,7 @@ def cmd_rules_check(args: argparse.Namespace) -> int:
         print(f"  {name}: switched off")
     if not report["channels"]:
         print("no channels: alerts are tracked but nothing is sent")
+        return 0
     for route in report["routes"]:
         match = ", ".join(f"{k}={v}" for k, v in route["match"].items()) or "every alert"
         print(f"route {route['name']}: {match} -> {', '.join(route['channels']) or 'nothing'}")
