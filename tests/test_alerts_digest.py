@@ -20,8 +20,8 @@ from aftercast.alerts.stage import apply_findings
 from aftercast.notify.deliver import deliver_due
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
-from tests.servers import LOOPBACK, NASTY_SERIES_ID, HttpRecorder, SmtpRecorder
-from tests.test_alerts_support import DAY, START, findings, outbox, seed
+from tests.servers import NASTY_SERIES_ID, HttpRecorder, SmtpRecorder
+from tests.test_alerts_support import DAY, START, findings, mail_channel, outbox, seed
 
 SECRET = "whsec_MfKQ9r8GKYqrTwjUPD8ILPZIo2LaLaSw"
 NOW = START + 22 * DAY
@@ -30,15 +30,7 @@ PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"
 
 def channels(smtp: SmtpRecorder, hook: HttpRecorder, folder: Path) -> list[dict[str, object]]:
     return [
-        {
-            "name": "planning-mail",
-            "type": "email",
-            "host": LOOPBACK,
-            "port": smtp.port,
-            "security": "none",
-            "sender": "aftercast@example.test",
-            "to": ["planning@example.test"],
-        },
+        mail_channel(smtp.port, "planning-mail", to=["planning@example.test"]),
         {"name": "ops-hook", "type": "webhook", "url": hook.url(), "secret": SECRET},
         {"name": "everything", "type": "file", "path": str(folder / "alerts.jsonl")},
     ]

@@ -24,8 +24,17 @@ from aftercast.config import Config
 from aftercast.notify.deliver import deliver_due
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
-from tests.servers import LOOPBACK, SmtpRecorder
-from tests.test_alerts_support import DAY, START, alerts, findings, outbox, seed, transitions
+from tests.servers import SmtpRecorder
+from tests.test_alerts_support import (
+    DAY,
+    START,
+    alerts,
+    findings,
+    mail_channel,
+    outbox,
+    seed,
+    transitions,
+)
 
 NOW = START + 22 * DAY
 
@@ -39,18 +48,7 @@ def smtp() -> Iterator[SmtpRecorder]:
 def mail_config(url: str, port: int, **rule: Any) -> Config:
     return make_config(
         url,
-        channels=[
-            {
-                "name": "oncall-mail",
-                "type": "email",
-                "host": LOOPBACK,
-                "port": port,
-                "security": "none",
-                "sender": "aftercast@example.test",
-                "to": ["oncall@example.test"],
-                "timeout_seconds": 5,
-            }
-        ],
+        channels=[mail_channel(port)],
         rules=[{"detection": "coverage_low", "remind_every_hours": 0, **rule}],
     )
 

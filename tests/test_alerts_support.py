@@ -25,6 +25,21 @@ START = 1_714_521_600  # 2024-05-01T00:00:00Z
 MODEL = "shop-planner"
 
 
+def mail_channel(port: int, name: str = "oncall-mail", **changes: Any) -> dict[str, Any]:
+    """An `email` channel entry for an SMTP server on loopback (plain SMTP, no login)."""
+    return {
+        "name": name,
+        "type": "email",
+        "host": "127.0.0.1",
+        "port": port,
+        "security": "none",
+        "sender": "aftercast@example.test",
+        "to": ["oncall@example.test"],
+        "timeout_seconds": 5,
+        **changes,
+    }
+
+
 def seed(engine: Engine, config: Config, labels: dict[str, dict[str, str]], days: int = 21) -> None:
     """Series with `labels` (key -> labels), daily forecasts issued a day ahead, and actuals."""
     ingest_records(

@@ -34,7 +34,7 @@ from aftercast.notify.deliver import deliver_due
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
 from tests.servers import LOOPBACK, HttpRecorder, SmtpRecorder, free_port
-from tests.test_alerts_support import DAY, START, findings, outbox, seed
+from tests.test_alerts_support import DAY, START, findings, mail_channel, outbox, seed
 
 SECRET = "whsec_MfKQ9r8GKYqrTwjUPD8ILPZIo2LaLaSw"  # "whsec_" + base64, the Standard Webhooks form
 NOW = START + 22 * DAY
@@ -129,15 +129,7 @@ def test_permanent_refusal_is_dead_at_once(sqlite_url: str) -> None:
 def test_dead_smtp_server_is_retried_and_its_failure_shows(
     sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    down = {
-        "name": "oncall-mail",
-        "type": "email",
-        "host": LOOPBACK,
-        "port": free_port(),  # nothing listens there
-        "security": "none",
-        "sender": "aftercast@example.test",
-        "to": ["oncall@example.test"],
-    }
+    down = mail_channel(free_port())  # nothing listens there
     with HttpRecorder() as server:
         engine, config = queue_one(sqlite_url, [down, hook(server.url())])
         report = deliver_due(engine, config)  # returns normally: a dead server is an outcome
@@ -154,17 +146,7 @@ def test_dead_smtp_server_is_retried_and_its_failure_shows(
 def test_failing_channel_holds_back_the_rest_of_its_batch(sqlite_url: str) -> None:
     config = make_config(
         sqlite_url,
-        channels=[
-            {
-                "name": "oncall-mail",
-                "type": "email",
-                "host": LOOPBACK,
-                "port": free_port(),
-                "security": "none",
-                "sender": "a@example.test",
-                "to": ["b@example.test"],
-            }
-        ],
+        channels=[mail_channel(free_port())],
         rules=[{"detection": "coverage_low", "raise_after": 1, "remind_every_hours": 0}],
     )
     engine = make_engine(config.store.url)
@@ -292,17 +274,7 @@ def test_dead_smtp_server_does_not_stop_the_cycle(
     port = free_port()  # nothing listens there
     engine, _ = queue_one(
         sqlite_url,
-        [
-            {
-                "name": "oncall-mail",
-                "type": "email",
-                "host": LOOPBACK,
-                "port": port,
-                "security": "none",
-                "sender": "aftercast@example.test",
-                "to": ["oncall@example.test"],
-            }
-        ],
+        [mail_channel(port)],
     )
     path = tmp_path / "c.yaml"
     path.write_text(
