@@ -219,6 +219,25 @@ def test_a_refresh_recomputes_only_touched_and_swept_keys(new_store: Callable[[]
         engine.dispose()
 
 
+def test_a_late_forecast_enters_a_points_window_not_yet_full(
+    new_store: Callable[[], str],
+) -> None:
+    # The latest 4 periods hold only 2 until a forecast made earlier arrives late.
+    engine, config = open_store(new_store(), **WINDOWS)
+    try:
+        ingest_records(engine, config, "actuals", actual_rows("s1", 0, list(range(8))), "t")
+        ingest_records(engine, config, "forecasts", forecast_rows("s1", "m1", 5, 3), "t")
+        now = int((START + pd.Timedelta(days=8)).timestamp())
+        refresh_windows(engine, config, now, match(engine, now).touched)
+        ingest_records(engine, config, "forecasts", forecast_rows("s1", "m1", 1, 3), "late")
+        refresh_windows(engine, config, now + 3600, match(engine, now + 3600).touched)
+        got = current_windows(engine, config, now + 3600, "latest")
+        assert_same_rows(got, full_recomputation(engine, config, now + 3600, "latest"))
+        assert got.loc[got["horizon"] == "all", "n"].tolist() == [4]  # periods 3, 4, 6, 7
+    finally:
+        engine.dispose()
+
+
 def test_a_cycle_that_stopped_early_forces_a_full_refresh(new_store: Callable[[], str]) -> None:
     engine, config = open_store(new_store(), **WINDOWS)
     try:

@@ -60,33 +60,56 @@ def _key_join(staged: str, columns: list[str]) -> str:
     return f"JOIN {staged} k ON {on}"
 
 
-def _points_cutoffs(connection: Connection, staged: str, columns: list[str], points: int,
-                    now: int) -> str:
-    """Stage, per (series, model), the first of its `points` latest target periods <= now."""
+def _ranked_cutoffs(
+    connection: Connection, staged: str, columns: list[str], points: int, now: int
+) -> pd.DataFrame:
+    """Per (series, model): the first of its `points` latest target periods <= now (above
+    the key's floor_period when given) and how many periods that window holds."""
     floor = " AND p.target_period >= k.floor_period" if "floor_period" in columns else ""
-    cutoffs = read_frame(
+    return read_frame(
         connection,
-        "SELECT series_id, model_id, MIN(target_period) AS first_period FROM ("
+        "SELECT series_id, model_id, MIN(target_period) AS first_period, "
+        "MAX(period_rank) AS periods FROM ("
         "SELECT p.series_id, p.model_id, p.target_period, DENSE_RANK() OVER (PARTITION BY "
         "p.series_id, p.model_id ORDER BY p.target_period DESC) AS period_rank FROM pairs p "
         f"{_key_join(staged, columns)} WHERE p.target_at <= :now{floor}) ranked "
         "WHERE period_rank <= :points GROUP BY series_id, model_id",
         {"now": now, "points": points},
     )
+
+
+def _points_cutoffs(
+    connection: Connection, keys: pd.DataFrame, staged: str, points: int, now: int
+) -> str:
+    """Stage, per (series, model), the first of its `points` latest target periods <= now."""
+    columns = list(keys.columns)
+    cutoffs = _ranked_cutoffs(connection, staged, columns, points, now)
+    if "floor_period" in columns:
+        # A floor only holds where the window above it is full: a key with fewer periods
+        # there may take in a pair that arrived late for an older period.
+        full = cutoffs.loc[cutoffs["periods"] >= points, ["series_id", "model_id"]]
+        full = full.astype("int64")
+        short = keys[["series_id", "model_id"]].merge(full, how="left", indicator=True)
+        short = short.loc[short["_merge"] == "left_only", ["series_id", "model_id"]]
+        if len(short):
+            again = stage_keys(connection, "window_short", short)
+            unfloored = _ranked_cutoffs(connection, again, ["series_id", "model_id"], points, now)
+            cutoffs = pd.concat([cutoffs[cutoffs["periods"] >= points], unfloored])
     if cutoffs.empty:
         cutoffs = pd.DataFrame({"series_id": [], "model_id": [], "first_period": []})
-    return stage_keys(connection, "window_cutoffs", cutoffs)
+    return stage_keys(connection, "window_cutoffs", cutoffs[["series_id", "model_id",
+                                                             "first_period"]])
 
 
 def _selection(
-    connection: Connection, window: WindowConfig, now: int, staged: str, columns: list[str]
+    connection: Connection, window: WindowConfig, now: int, staged: str, keys: pd.DataFrame
 ) -> tuple[str, dict[str, Any]]:
     """JOIN and WHERE text choosing the pairs of `window` at `now` for the staged keys."""
     if window.days is not None:
         where = "WHERE p.target_at > :start AND p.target_at <= :now"
         params = {"start": now - int(window.days * DAY), "now": now}
-        return f"{_key_join(staged, columns)} {where}", params
-    cut = _points_cutoffs(connection, staged, columns, int(window.points or 0), now)
+        return f"{_key_join(staged, list(keys.columns))} {where}", params
+    cut = _points_cutoffs(connection, keys, staged, int(window.points or 0), now)
     join = f"JOIN {cut} c ON c.series_id = p.series_id AND c.model_id = p.model_id"
     return f"{join} WHERE p.target_period >= c.first_period AND p.target_at <= :now", {"now": now}
 
@@ -100,7 +123,7 @@ def compute_sums(
     columns = list(keys.columns)
     # One staging table per shape of key: a temporary table keeps the columns it was made with.
     staged = stage_keys(connection, "window_keys_" + "".join(c[0] for c in columns), keys)
-    chosen, params = _selection(connection, window, now, staged, columns)
+    chosen, params = _selection(connection, window, now, staged, keys)
     points = read_frame(
         connection,
         f"SELECT {_GROUP}, {_POINT_SELECT} FROM pairs p {chosen} GROUP BY {_GROUP}",
