@@ -25,7 +25,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import BigInteger, Column, Connection, Engine, Float, MetaData, Table, Text, text
 
-from aftercast.config import Config, WindowConfig
+from aftercast.config import WindowConfig
 from aftercast.periods import to_iso
 from aftercast.store.bulk import insert_frame
 from aftercast.window_store import is_current, rows_for_page, series_pages
@@ -130,10 +130,6 @@ class StatusQuery:
     horizon: str | None = None  # '3', '2-7' or 'all'
     labels: tuple[tuple[str, str], ...] = ()
     limit: int | None = None
-
-    @classmethod
-    def from_config(cls, config: Config, window: WindowConfig, now: int, **options: Any) -> Any:
-        return cls(window, now, tuple(config.horizon_buckets), **options)
 
 
 @dataclass
