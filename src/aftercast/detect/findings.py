@@ -63,6 +63,8 @@ def _iso_columns(frame: pd.DataFrame) -> pd.DataFrame:
         if column.endswith(("_at", "_start", "_end")):
             seconds = pd.to_numeric(frame[column], errors="coerce")
             seconds = seconds.where(seconds.abs() < 1e11)  # beyond year 5000: not an instant
+            import sys
+            print("ISO", column, seconds.dtype, seconds.tolist()[:20], file=sys.stderr)
             stamps = pd.to_datetime(seconds, unit="s", utc=True).dt.strftime("%Y-%m-%dT%H:%M:%SZ")
             frame[column] = stamps.where(seconds.notna(), None)
     return frame
@@ -197,7 +199,9 @@ def active_findings(connection: Connection, include_cleared: bool = False) -> pd
 
 def finding_records(rows: pd.DataFrame) -> list[dict[str, Any]]:
     """`alerts --json` rows: series_id, model, horizon, rule, state, active, severity, ..."""
-    records = []
+    records: list[dict[str, Any]] = []
+    if rows.empty:
+        return records
     for row in rows.sort_values(["series_key", "model", "detection", "bucket"]).itertuples():
         evidence = json.loads(row.evidence)
         records.append(

@@ -30,7 +30,7 @@ def _python_rows(frame: pd.DataFrame) -> Iterable[tuple[Any, ...]]:
     columns = []
     for name in frame.columns:
         column = frame[name]
-        if column.dtype.kind in "fiub":
+        if isinstance(column.dtype, np.dtype) and column.dtype.kind in "fiub":
             columns.append(column.tolist())
         else:
             columns.append(column.astype(object).where(column.notna(), None).tolist())
