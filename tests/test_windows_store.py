@@ -14,6 +14,7 @@ import uuid
 from collections.abc import Callable, Iterator
 from typing import Any
 
+import numpy as np
 import pandas as pd
 import pytest
 from hypothesis import HealthCheck, Phase, given, settings
@@ -26,8 +27,14 @@ from aftercast.ingest import ingest_records
 from aftercast.matching import match
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
-from aftercast.window_store import current_windows, find_window, refresh_windows, rows_for_page
-from aftercast.windows import group_horizons, pair_sums, select_window, window_rows
+from aftercast.window_store import (
+    REBASE_DAYS,
+    current_windows,
+    find_window,
+    refresh_windows,
+    rows_for_page,
+)
+from aftercast.windows import EXTREMES, group_horizons, pair_sums, select_window, window_rows
 from tests.conftest import POSTGRES_ENV, make_config
 
 DAY = 86_400
@@ -90,14 +97,19 @@ def assert_same_rows(got: pd.DataFrame, want: pd.DataFrame) -> None:
     if want.empty:
         assert got.empty
         return
-    assert set(got.columns) - set(NAMES) == set(want.columns)
+    measures = [c for c in want.columns if c not in EXTREMES]
+    assert set(got.columns) - set(NAMES) == set(measures)
 
-    def ordered(frame: pd.DataFrame) -> pd.DataFrame:
-        frame = frame[list(want.columns)].assign(_h=frame["horizon"].astype(str))
+    def ordered(frame: pd.DataFrame, columns: list[str]) -> pd.DataFrame:
+        frame = frame.assign(_h=frame["horizon"].astype(str))
         frame = frame.sort_values(["series_id", "model_id", "_h"]).reset_index(drop=True)
-        return frame.drop(columns="_h").astype({"horizon": str})
+        return frame[columns].astype({"horizon": str} if "horizon" in columns else {})
 
-    pd.testing.assert_frame_equal(ordered(got), ordered(want), check_dtype=False, rtol=1e-9)
+    pd.testing.assert_frame_equal(ordered(got, measures), ordered(want, measures),
+                                  check_dtype=False, rtol=1e-9)
+    if got["window"].iloc[0] == "latest":  # a points window spans its first to last target
+        spans = ordered(got, ["window_start", "window_end"]).to_numpy()
+        np.testing.assert_array_equal(spans, ordered(want, ["first_target", "last_target"]))
 
 
 def sql_rows(engine: Engine, config: Config, now: int, name: str) -> pd.DataFrame:
@@ -205,16 +217,41 @@ def test_a_refresh_recomputes_only_touched_and_swept_keys(new_store: Callable[[]
         assert matched.touched is not None and set(matched.touched["series_id"]) == {1}
         refreshed = refresh_windows(engine, config, now, matched.touched)
         assert [(r.full, r.keys) for r in refreshed] == [(False, 2), (False, 2)]
-        # A day later nothing was scored: only the keys with pairs the edges passed.
+        # A day later nothing was scored. The days window moves by deltas, recomputing only
+        # the series on today's turn of the rotation; the points window recomputes the keys
+        # with pairs its edge passed.
         later = now + DAY
         refreshed = refresh_windows(engine, config, later, None)
-        assert [(r.full, r.keys) for r in refreshed] == [(False, 4), (False, 4)]
-        for at, name in itertools.product((now, later), ("short", "latest")):
-            if at == later:
-                assert_same_rows(current_windows(engine, config, at, name),
-                                 full_recomputation(engine, config, at, name))
+        on_turn = [s for s in (1, 2) if s % REBASE_DAYS == (later // DAY) % REBASE_DAYS]
+        assert [(r.full, r.keys) for r in refreshed] == [(False, 2 * len(on_turn)), (False, 4)]
+        for name in ("short", "latest"):
+            assert_same_rows(current_windows(engine, config, later, name),
+                             full_recomputation(engine, config, later, name))
         assert_same_rows(sql_rows(engine, config, now, "short"),
                          full_recomputation(engine, config, now, "short"))
+    finally:
+        engine.dispose()
+
+
+def test_a_revision_inside_a_moving_window_is_recomputed(
+    new_store: Callable[[], str],
+) -> None:
+    # Deltas only add and remove edge strips: a rescored pair inside the old window must be
+    # recomputed, whichever series is on the rotation's turn.
+    engine, config = open_store(new_store(), **WINDOWS)
+    try:
+        for series in SERIES:
+            ingest_records(engine, config, "actuals", actual_rows(series, 0, list(range(9))), "t")
+            ingest_records(engine, config, "forecasts", forecast_rows(series, "m1", 3, 5), "t")
+        now = int((START + pd.Timedelta(days=6)).timestamp())
+        refresh_windows(engine, config, now, match(engine, now).touched)
+        for series in SERIES:  # revised: the actual of day 5, inside the window
+            ingest_records(engine, config, "actuals", actual_rows(series, 5, [50]), "revision")
+        later = now + 6 * 3600
+        refresh_windows(engine, config, later, match(engine, later).touched)
+        for name in ("short", "latest"):
+            assert_same_rows(current_windows(engine, config, later, name),
+                             full_recomputation(engine, config, later, name))
     finally:
         engine.dispose()
 

@@ -1,18 +1,21 @@
 """The windows stage: keep each window's sums current, and read window rows for any clock.
 
 Design: additive sums per (series, model, horizon) for each configured window are stored as
-of the last cycle's clock (`store.schema_windows`). After matching, a cycle recomputes the
-sums only for the (series, model) keys whose pairs were scored this cycle, plus the keys with
-pairs in the strips the window's edges swept since the last refresh (a pair entering at the
-new end, or leaving past the new start); every other key's window holds the same pairs as
-before. Each recompute is a GROUP BY over that key's pairs inside the window, so the work
-follows the pairs touched and the window's size, never the stored history. Recomputing
-rather than adding deltas keeps the sums exact: no rounding drift, nothing to reconcile after
-a revision. The store is refreshed from scratch when there is no earlier refresh, the window's
-definition changed, the clock jumped by more than a whole window, or a cycle since the last
-refresh ended without reaching this stage (its matched pairs are unknown). Readers get rows
-for the refreshed clock from the stored sums and for any other clock straight from the pairs,
-page by page of series, with the same sums and the same arithmetic (`windows`).
+of the last cycle's clock (`store.schema_windows`). A `days` window moving forward is
+brought up by deltas (`store.window_delta`): the sums of the pairs whose target_at the new
+end passed are added and those the new start passed are taken out, which costs two strips of
+targets whatever the history. Keys whose pairs inside the old window were rescored at this
+clock (a revision, a late forecast) are recomputed from their pairs instead, as are a
+rotating 1/REBASE_DAYS of the keys each day so that float rounding never builds up. A
+`points` window, a clock that moved back, or a second cycle at the same clock recompute the
+(series, model) keys scored this cycle plus the keys with pairs the window's edges swept;
+every other key's window holds the same pairs as before. Each recompute is a GROUP BY over
+that key's pairs inside the window, never the history. Everything is recomputed from
+scratch when there is no earlier refresh, the window's definition changed, the clock jumped
+by a whole window, or a cycle since the last refresh ended without reaching this stage (its
+matched pairs are unknown). Readers get rows for the refreshed clock from the stored sums
+and for any other clock straight from the pairs, page by page of series, with the same sums
+and the same arithmetic (`windows`).
 """
 
 from __future__ import annotations
@@ -29,6 +32,7 @@ from aftercast.config import Config, WindowConfig
 from aftercast.errors import AftercastError
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
+from aftercast.store.window_delta import apply_delta, rescored_keys, scored_keys, strip_delta
 from aftercast.store.window_sums import (
     compute_sums,
     delete_stored,
@@ -37,9 +41,11 @@ from aftercast.store.window_sums import (
     stored_floors,
     window_spec,
 )
-from aftercast.windows import DAY, KEY, group_horizons, window_rows
+from aftercast.windows import DAY, EXTREMES, KEY, group_horizons, window_rows
 
 PAGE_SERIES = 5_000
+# Every key of a `days` window is recomputed from its pairs once in this many days.
+REBASE_DAYS = 28
 _KEYS_PER_BATCH = 20_000
 
 
@@ -113,32 +119,71 @@ def _swept_keys(
     return read_frame(connection, selects, params)
 
 
-def _keys_to_refresh(
+@dataclass
+class _Plan:
+    """How to bring one window to the clock: from scratch, or by a delta plus some keys."""
+
+    keys: pd.DataFrame | None  # keys to recompute from their pairs; None: all of them
+    delta_from: int | None = None  # move the stored sums forward from this clock by deltas
+
+
+def _delta_plan(
+    connection: Connection, window: WindowConfig, before: int, now: int,
+    touched: pd.DataFrame | None,
+) -> _Plan:
+    """A `days` window moving forward: deltas for most keys, recompute the rest.
+
+    Recomputed: keys with a pair scored at this clock that was already inside the old window
+    (its stored value may be stale), touched keys with no pair scored at this clock (scored
+    elsewhere, so their pairs are unknown), and the keys of series whose id falls on today in
+    a rotation of REBASE_DAYS days, which keeps rounding from building up in the sums.
+    """
+    span = int((window.days or 0) * DAY)
+    parts = [rescored_keys(connection, now, before - span, before)]
+    if touched is not None and len(touched):
+        scored = scored_keys(connection, now)
+        known = touched[KEY].astype("int64").merge(scored, how="left", indicator=True)
+        parts.append(known.loc[known["_merge"] == "left_only", KEY])
+    parts.append(
+        read_frame(
+            connection,
+            "SELECT DISTINCT series_id, model_id FROM window_point_sums "
+            "WHERE window_name = :w AND series_id % :r = :k",
+            {"w": window.name, "r": REBASE_DAYS, "k": (now // DAY) % REBASE_DAYS},
+        )
+    )
+    keys = pd.concat(parts, ignore_index=True).astype("int64").drop_duplicates()
+    return _Plan(keys.reset_index(drop=True), delta_from=before)
+
+
+def _plan(
     connection: Connection,
     window: WindowConfig,
     now: int,
     touched: pd.DataFrame | None,
     latest: int,
-) -> pd.DataFrame | None:
-    """Keys whose window changed since the last refresh, or None to recompute everything."""
+) -> _Plan:
+    """What changed since the last refresh, and so what to do (see the module docstring)."""
     mark = _mark(connection, window.name)
     if mark is None or mark["spec"] != window_spec(window) or _missed_cycles(
         connection, mark, latest
     ):
-        return None
+        return _Plan(None)
     before = int(mark["now"])
     if window.days is not None and abs(now - before) >= window.days * DAY:
-        return None
+        return _Plan(None)
+    if window.days is not None and now > before:
+        return _delta_plan(connection, window, before, now, touched)
     parts = [_swept_keys(connection, window, before, now)] if before != now else []
     if touched is not None and len(touched):
         parts.append(touched[KEY])
     if not parts:
-        return pd.DataFrame({"series_id": [], "model_id": []}, dtype="int64")
+        return _Plan(pd.DataFrame({"series_id": [], "model_id": []}, dtype="int64"))
     keys = pd.concat(parts, ignore_index=True).astype("int64").drop_duplicates()
     if window.points is not None and now >= before:
         # The N latest periods only move up as the clock does: no need to rank older ones.
         keys = stored_floors(connection, window.name, keys)
-    return keys.reset_index(drop=True)
+    return _Plan(keys.reset_index(drop=True))
 
 
 def _write_mark(connection: Connection, window: WindowConfig, now: int, cycle_id: int) -> None:
@@ -182,8 +227,8 @@ def _refresh_window(
     touched: pd.DataFrame | None,
     latest: int,
 ) -> WindowRefresh:
-    keys = _keys_to_refresh(connection, window, now, touched, latest)
-    if keys is None:
+    plan = _plan(connection, window, now, touched, latest)
+    if plan.keys is None:
         delete_stored(connection, window.name, None)
         count = 0
         for page in series_pages(connection, PAGE_SERIES):
@@ -193,6 +238,11 @@ def _refresh_window(
             count += len(sums.points[KEY].drop_duplicates())
         refresh = WindowRefresh(window.name, True, count)
     else:
+        if plan.delta_from is not None:
+            span = int((window.days or 0) * DAY)
+            apply_delta(connection, window.name, strip_delta(connection, plan.delta_from, now,
+                                                             span))
+        keys = plan.keys
         for start in range(0, len(keys), _KEYS_PER_BATCH):
             batch = keys.iloc[start : start + _KEYS_PER_BATCH]
             delete_stored(connection, window.name, batch[KEY])
@@ -255,7 +305,8 @@ def rows_for_page(
     else:
         rows["window_start"] = rows["first_target"]
         rows["window_end"] = rows["last_target"]
-    return rows.reset_index(drop=True)
+    # The extremes are bookkeeping of `points` windows (deltas leave them stale in `days` ones).
+    return rows.drop(columns=list(EXTREMES)).reset_index(drop=True)
 
 
 def iter_windows(

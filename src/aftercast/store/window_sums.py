@@ -34,11 +34,12 @@ NO_FLOOR = -(2**62)
 
 _POINT_SELECT = """
 COUNT(*) AS n, SUM(p.error) AS sum_error, SUM(p.abs_error) AS sum_abs_error,
-SUM(p.sq_error) AS sum_sq_error, COUNT(p.ape) AS n_ape, SUM(p.ape) AS sum_ape,
-COUNT(p.sape) AS n_sape, SUM(p.sape) AS sum_sape, SUM(ABS(p.actual)) AS sum_abs_actual,
-COUNT(p.scaled_error) AS n_scaled, SUM(ABS(p.scaled_error)) AS sum_abs_scaled,
+SUM(p.sq_error) AS sum_sq_error, COUNT(p.ape) AS n_ape, COALESCE(SUM(p.ape), 0) AS sum_ape,
+COUNT(p.sape) AS n_sape, COALESCE(SUM(p.sape), 0) AS sum_sape, SUM(ABS(p.actual)) AS sum_abs_actual,
+COUNT(p.scaled_error) AS n_scaled, COALESCE(SUM(ABS(p.scaled_error)), 0) AS sum_abs_scaled,
 SUM(CASE WHEN p.scale_sq > 0 THEN 1 ELSE 0 END) AS n_sq_scaled,
-SUM(CASE WHEN p.scale_sq > 0 THEN p.sq_error / p.scale_sq END) AS sum_sq_scaled,
+COALESCE(SUM(CASE WHEN p.scale_sq > 0 THEN p.sq_error / p.scale_sq END), 0)
+    AS sum_sq_scaled,
 MIN(p.target_at) AS first_target, MAX(p.target_at) AS last_target,
 MIN(p.target_period) AS first_period"""
 _LEVEL_SELECT = """
@@ -114,16 +115,8 @@ def _selection(
     return f"{join} WHERE p.target_period >= c.first_period AND p.target_at <= :now", {"now": now}
 
 
-def compute_sums(
-    connection: Connection, window: WindowConfig, now: int, keys: pd.DataFrame
-) -> WindowSums:
-    """Sums of the pairs inside `window` at `now` for `keys` (see the module docstring)."""
-    if keys.empty:
-        return WindowSums.empty()
-    columns = list(keys.columns)
-    # One staging table per shape of key: a temporary table keeps the columns it was made with.
-    staged = stage_keys(connection, "window_keys_" + "".join(c[0] for c in columns), keys)
-    chosen, params = _selection(connection, window, now, staged, keys)
+def _grouped_sums(connection: Connection, chosen: str, params: dict[str, Any]) -> WindowSums:
+    """The three GROUP BY queries over the pairs that `chosen` (JOIN ... WHERE ...) selects."""
     points = read_frame(
         connection,
         f"SELECT {_GROUP}, {_POINT_SELECT} FROM pairs p {chosen} GROUP BY {_GROUP}",
@@ -144,6 +137,27 @@ def compute_sums(
         params,
     )
     return _typed(WindowSums(points, levels, quantiles))
+
+
+def compute_sums(
+    connection: Connection, window: WindowConfig, now: int, keys: pd.DataFrame
+) -> WindowSums:
+    """Sums of the pairs inside `window` at `now` for `keys` (see the module docstring)."""
+    if keys.empty:
+        return WindowSums.empty()
+    columns = list(keys.columns)
+    # One staging table per shape of key: a temporary table keeps the columns it was made with.
+    staged = stage_keys(connection, "window_keys_" + "".join(c[0] for c in columns), keys)
+    chosen, params = _selection(connection, window, now, staged, keys)
+    return _grouped_sums(connection, chosen, params)
+
+
+def range_sums(connection: Connection, start: int, end: int) -> WindowSums:
+    """Sums, per key, of every pair with start < target_at <= end (a strip of targets)."""
+    if end <= start:
+        return WindowSums.empty()
+    where = "WHERE p.target_at > :start AND p.target_at <= :end"
+    return _grouped_sums(connection, where, {"start": start, "end": end})
 
 
 _INTEGERS = {"n", "n_ape", "n_sape", "n_scaled", "n_sq_scaled", "hits", "below", *EXTREMES}
