@@ -19,8 +19,6 @@ that day's actual exists, is a two-step forecast of the data.
 
 from __future__ import annotations
 
-import warnings
-
 import numpy as np
 import pandas as pd
 
@@ -131,13 +129,16 @@ def _latest_windows(
     fancy indexing gathers the windows of all queries at once. Returns the values (NaN where
     the window reaches before the group's first error) and the count of real values.
     """
-    groups = pd.MultiIndex.from_frame(errors[["series_id", "lag"]])
-    codes, uniques = groups.factorize()
+    # One int64 per (series, lag): lags are small, so series * (max lag + 1) + lag is unique.
+    width = int(max(errors["lag"].max(), queries["lag"].max())) + 1
+    group_key = errors["series_id"].to_numpy(np.int64) * width + errors["lag"].to_numpy(np.int64)
+    codes, uniques = pd.factorize(group_key)
     start = np.flatnonzero(np.r_[True, codes[1:] != codes[:-1]])
     periods = errors["period"].to_numpy(np.int64)
     shift = np.int64(periods.max() - periods.min() + 2)
     combined = codes.astype(np.int64) * shift + (periods - periods.min())
-    wanted = uniques.get_indexer(pd.MultiIndex.from_frame(queries[["series_id", "lag"]]))
+    query_key = queries["series_id"].to_numpy(np.int64) * width + queries["lag"].to_numpy(np.int64)
+    wanted = pd.Index(uniques).get_indexer(query_key)
     last = queries["last"].to_numpy(np.int64) - periods.min()
     known = (wanted >= 0) & (last >= 0)
     code = np.where(known, wanted, 0)
@@ -182,11 +183,27 @@ def error_quantiles(
     values, count = _latest_windows(errors, queries, window)
     enough = count >= min_errors
     if enough.any():
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows are masked below
-            found = np.nanquantile(values[enough], probs, axis=1)
-        out.loc[enough, list(probs)] = found.T
+        out.loc[enough, list(probs)] = row_quantiles(values[enough], count[enough], probs)
     return out
+
+
+def row_quantiles(values: np.ndarray, count: np.ndarray, probs: list[float]) -> np.ndarray:
+    """Per row, quantiles of its `count` non-NaN values: linear interpolation (type 7).
+
+    numpy's `nanquantile` loops over rows in Python; sorting every row at once (NaN last) and
+    interpolating between order statistics gives the same numbers in one pass.
+
+    >>> row_quantiles(np.array([[3.0, 1.0, np.nan], [4.0, 2.0, 6.0]]), np.array([2, 3]), [0.5])
+    array([[2.],
+           [4.]])
+    """
+    ordered = np.sort(values, axis=1)
+    position = (count[:, None] - 1) * np.asarray(probs)[None, :]
+    low = np.floor(position).astype(np.int64)
+    high = np.minimum(low + 1, count[:, None] - 1)
+    below = np.take_along_axis(ordered, low, axis=1)
+    above = np.take_along_axis(ordered, high, axis=1)
+    return below + (above - below) * (position - low)
 
 
 def benchmark_forecasts(

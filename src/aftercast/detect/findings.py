@@ -62,11 +62,13 @@ def _iso_columns(frame: pd.DataFrame) -> pd.DataFrame:
     for column in frame.columns:
         if column.endswith(("_at", "_start", "_end")):
             seconds = pd.to_numeric(frame[column], errors="coerce")
-            seconds = seconds.where(seconds.abs() < 1e11)  # beyond year 5000: not an instant
-            import sys
-            print("ISO", column, seconds.dtype, seconds.tolist()[:20], file=sys.stderr)
-            stamps = pd.to_datetime(seconds, unit="s", utc=True).dt.strftime("%Y-%m-%dT%H:%M:%SZ")
-            frame[column] = stamps.where(seconds.notna(), None)
+            known = seconds.notna() & (seconds.abs() < 1e11)  # beyond year 5000: no instant
+            text = pd.Series(None, index=frame.index, dtype=object)
+            # Whole seconds as int64: pandas' float path can trip over NaN in its overflow check.
+            whole = seconds[known].round().astype(np.int64)
+            stamps = pd.to_datetime(whole, unit="s", utc=True)
+            text[known] = stamps.dt.strftime("%Y-%m-%dT%H:%M:%SZ").to_numpy()
+            frame[column] = text
     return frame
 
 

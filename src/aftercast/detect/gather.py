@@ -101,10 +101,11 @@ def window_data(connection: Connection, config: Config, now: int) -> WindowData:
     wanted = ~is_benchmark | config.detection.include_benchmarks
     wanted |= models == model_name(config.detection.benchmark)
     pairs = _window_pairs(connection, detection_window(config), now, list(models.index[wanted]))
-    names = pd.Series(models.reindex(pairs["model_id"]).fillna("").to_numpy())
-    reference = (names == model_name(config.detection.benchmark)).to_numpy()
-    tested = ~names.str.startswith(BENCHMARK_PREFIX).to_numpy()
-    tested |= config.detection.include_benchmarks & ~reference
+    # Per model first, then mapped to the pairs: a few names, not one string test per pair.
+    is_reference = models == model_name(config.detection.benchmark)
+    is_tested = ~is_benchmark | (config.detection.include_benchmarks & ~is_reference)
+    reference = np.isin(pairs["model_id"].to_numpy(), models.index[is_reference])
+    tested = np.isin(pairs["model_id"].to_numpy(), models.index[is_tested])
     labels = bucket_labels(config.horizon_buckets)
     production = with_buckets(pairs.loc[tested], labels)
     benchmark = with_buckets(pairs.loc[reference], labels)
