@@ -65,8 +65,14 @@ def _ingest(engine: Any, config: Config, kind: str, frame: pd.DataFrame) -> floa
 
 def run_history(args: argparse.Namespace, days: int) -> dict[str, Any]:
     """Load `days` days, run the first cycle, then the next day; seconds of each part."""
-    spec = ScenarioSpec(n_series=args.series, days=days + 1, horizons=14,
-                        models=("shop-planner",), history_days=28, seed=args.seed)
+    spec = ScenarioSpec(
+        n_series=args.series,
+        days=days + 1,
+        horizons=14,
+        models=("shop-planner",),
+        history_days=28,
+        seed=args.seed,
+    )
     scenario = generate(spec)
     url = _fresh_store(args.store, f"{days}d")
     config = parse_config({"store": {"url": url}}, "bench config")
@@ -75,10 +81,16 @@ def run_history(args: argparse.Namespace, days: int) -> dict[str, Any]:
     next_day = scenario.forecasts["issued_at"].max().normalize()
     actuals, forecasts = scenario.actuals, scenario.forecasts
     stored_actuals = actuals[actuals["observed_at"] < next_day]
-    new_actuals = actuals[(actuals["observed_at"] >= next_day)
-                          & (actuals["observed_at"] < next_day + pd.Timedelta(days=1))]
-    result: dict[str, Any] = {"tool": "bench_incremental", "days": days, "series": args.series,
-                              "store": engine.url.get_backend_name()}
+    new_actuals = actuals[
+        (actuals["observed_at"] >= next_day)
+        & (actuals["observed_at"] < next_day + pd.Timedelta(days=1))
+    ]
+    result: dict[str, Any] = {
+        "tool": "bench_incremental",
+        "days": days,
+        "series": args.series,
+        "store": engine.url.get_backend_name(),
+    }
     result["load_seconds"] = _ingest(engine, config, "actuals", stored_actuals) + _ingest(
         engine, config, "forecasts", forecasts[forecasts["issued_at"] < next_day]
     )
@@ -105,8 +117,11 @@ def parse_args(argv: list[str] | None) -> argparse.Namespace:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--series", type=int, default=1000)
     parser.add_argument("--days", type=int, default=90, help="stored days; also run at twice")
-    parser.add_argument("--store", default="bench/out",
-                        help="folder for SQLite files, or a postgresql+psycopg:// server URL")
+    parser.add_argument(
+        "--store",
+        default="bench/out",
+        help="folder for SQLite files, or a postgresql+psycopg:// server URL",
+    )
     parser.add_argument("--seed", type=int, default=7)
     parser.add_argument("-o", "--output", type=Path, help="also write the JSON lines here")
     return parser.parse_args(argv)

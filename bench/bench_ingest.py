@@ -55,7 +55,9 @@ def run_store(data: Path, fmt: str, url: str) -> dict[str, float]:
 def run_baseline(data: Path, fmt: str) -> dict[str, float]:
     result = subprocess.run(
         [sys.executable, str(HERE / "pandas_baseline.py"), "--data", str(data), "--format", fmt],
-        capture_output=True, text=True, check=True,
+        capture_output=True,
+        text=True,
+        check=True,
     )
     return dict(json.loads(result.stdout.strip().splitlines()[-1]))
 
@@ -67,8 +69,10 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--store-url", help="store URL (default: a fresh SQLite file)")
     args = parser.parse_args(argv)
     if not (args.data / args.format).is_dir():
-        print(f"bench_ingest: {args.data / args.format} missing: run bench/make_data.py first",
-              file=sys.stderr)
+        print(
+            f"bench_ingest: {args.data / args.format} missing: run bench/make_data.py first",
+            file=sys.stderr,
+        )
         return 2
     with tempfile.TemporaryDirectory() as folder:
         url = args.store_url or f"sqlite:///{Path(folder) / 'bench.db'}"

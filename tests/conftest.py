@@ -18,6 +18,12 @@ from aftercast.config import Config, parse_config
 from aftercast.store.db import make_engine, migrate
 
 POSTGRES_ENV = "AFTERCAST_TEST_POSTGRES_URL"
+# The status JSON row of the CONTRACT in the shared design document, in its order.
+STATUS_CONTRACT = [
+    *("series_id", "model", "horizon", "n", "me", "mae", "mse", "rmse"),
+    *("mape", "smape", "wape", "mase", "coverage", "width", "interval_score"),
+    *("window_start", "window_end"),
+]
 
 
 @pytest.fixture

@@ -40,9 +40,7 @@ def test_point_errors_match_sklearn(sample: tuple[np.ndarray, np.ndarray]) -> No
     e = measures.forecast_error(y, f)
     assert np.abs(e).mean() == pytest.approx(metrics.mean_absolute_error(y, f), rel=1e-12)
     assert (e**2).mean() == pytest.approx(metrics.mean_squared_error(y, f), rel=1e-12)
-    assert np.sqrt((e**2).mean()) == pytest.approx(
-        metrics.root_mean_squared_error(y, f), rel=1e-12
-    )
+    assert np.sqrt((e**2).mean()) == pytest.approx(metrics.root_mean_squared_error(y, f), rel=1e-12)
     # scikit-learn's MAPE is a fraction, ours a percentage.
     ape = measures.absolute_percentage_error(y, f)
     assert ape.mean() / 100 == pytest.approx(
@@ -205,12 +203,19 @@ def test_percentage_and_scaled_errors_ignore_units(
     scale_k = measures.seasonal_scales(scaled, query)["scale_abs"].to_numpy()
     assume(scale[0] > 0)
     for one, other in (
-        (measures.absolute_percentage_error(y, f), measures.absolute_percentage_error(
-            y * factor, f * factor)),
-        (measures.symmetric_absolute_percentage_error(y, f),
-         measures.symmetric_absolute_percentage_error(y * factor, f * factor)),
-        (measures.scaled_error(y - f, np.repeat(scale, n)),
-         measures.scaled_error((y - f) * factor, np.repeat(scale_k, n))),
+        (
+            measures.absolute_percentage_error(y, f),
+            measures.absolute_percentage_error(y * factor, f * factor),
+        ),
+        (
+            measures.symmetric_absolute_percentage_error(y, f),
+            measures.symmetric_absolute_percentage_error(y * factor, f * factor),
+        ),
+        (
+            measures.scaled_error(y - f, np.repeat(scale, n)),
+            measures.scaled_error((y - f) * factor, np.repeat(scale_k, n)),
+        ),
     ):
-        np.testing.assert_allclose(np.nanmean(np.abs(one)), np.nanmean(np.abs(other)),
-                                   rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(
+            np.nanmean(np.abs(one)), np.nanmean(np.abs(other)), rtol=1e-9, atol=1e-12
+        )

@@ -31,11 +31,10 @@ from aftercast.sources.files import Chunk
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
 from aftercast.window_store import find_window, refresh_windows
+from tests.conftest import STATUS_CONTRACT as CONTRACT
 from tests.conftest import make_config
 
 NOW = "2026-06-18T12:00:00Z"
-CONTRACT = ["series_id", "model", "horizon", "n", "me", "mae", "mse", "rmse", "mape", "smape",
-            "wape", "mase", "coverage", "width", "interval_score", "window_start", "window_end"]
 SECTIONS: dict[str, Any] = {
     "window": {"name": "recent", "days": 7},
     "windows": [{"name": "latest", "points": 5}],
@@ -44,12 +43,16 @@ SECTIONS: dict[str, Any] = {
 
 
 def _fill(engine: Engine, config: Config) -> None:
-    scenario = generate(ScenarioSpec(n_series=6, days=20, horizons=3, models=("a", "b"),
-                                     history_days=14, seed=5))
+    scenario = generate(
+        ScenarioSpec(n_series=6, days=20, horizons=3, models=("a", "b"), history_days=14, seed=5)
+    )
     actuals = scenario.actuals.copy()
     actuals.loc[actuals.index[-40:-38], "value"] = 0.0  # zero actuals: left out of MAPE
-    for kind, frame in (("series", scenario.series), ("actuals", actuals),
-                        ("forecasts", scenario.forecasts)):
+    for kind, frame in (
+        ("series", scenario.series),
+        ("actuals", actuals),
+        ("forecasts", scenario.forecasts),
+    ):
         ingest_chunks(engine, config, kind, kind, iter([Chunk(frame.reset_index(drop=True), 1)]))
     now = parse_instant(NOW)
     refresh_windows(engine, config, now, match(engine, now).touched)
@@ -80,8 +83,9 @@ def _strict_json(text: str) -> Any:
     return json.loads(text, parse_constant=no_nan)
 
 
-def test_json_rows_follow_the_contract(store: tuple[Path, Config, Engine],
-                                       capsys: pytest.CaptureFixture[str]) -> None:
+def test_json_rows_follow_the_contract(
+    store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
+) -> None:
     path, config, engine = store
     rows = _strict_json(_cli(capsys, path, "--json"))
     assert rows and all(set(CONTRACT) <= set(r) for r in rows)
@@ -104,12 +108,14 @@ def test_json_rows_follow_the_contract(store: tuple[Path, Config, Engine],
         elif row["horizon"] != "all":
             mine = mine[mine["horizon"] == row["horizon"]]
         assert row["n"] == len(mine)
-        assert row["mae"] == pytest.approx(metrics.mean_absolute_error(mine["actual"],
-                                                                       mine["point"]))
+        assert row["mae"] == pytest.approx(
+            metrics.mean_absolute_error(mine["actual"], mine["point"])
+        )
         nonzero = mine[mine["actual"] != 0]
         assert row["mape_excluded"] == len(mine) - len(nonzero)
         assert row["mape"] == pytest.approx(
-            100 * metrics.mean_absolute_percentage_error(nonzero["actual"], nonzero["point"]))
+            100 * metrics.mean_absolute_percentage_error(nonzero["actual"], nonzero["point"])
+        )
         assert row["window_end"] == NOW
 
 
@@ -139,39 +145,48 @@ def _close(a: dict[str, Any], b: dict[str, Any]) -> bool:
     return True
 
 
-def test_filters_match_fnmatch_and_labels(store: tuple[Path, Config, Engine],
-                                          capsys: pytest.CaptureFixture[str]) -> None:
+def test_filters_match_fnmatch_and_labels(
+    store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
+) -> None:
     path, config, engine = store
     everything = _strict_json(_cli(capsys, path, "--json"))
     pattern = "shop-00[12]/*"
-    got = _strict_json(_cli(capsys, path, "--json", "--series", pattern, "--model", "b",
-                            "--horizon", "2-3"))
-    want = [r for r in everything if fnmatchcase(r["series_id"], pattern)
-            and r["model"] == "b" and r["horizon"] == "2-3"]
+    got = _strict_json(
+        _cli(capsys, path, "--json", "--series", pattern, "--model", "b", "--horizon", "2-3")
+    )
+    want = [
+        r
+        for r in everything
+        if fnmatchcase(r["series_id"], pattern) and r["model"] == "b" and r["horizon"] == "2-3"
+    ]
     assert got == want and got
     with engine.connect() as connection:
         labels = read_frame(connection, "SELECT key, labels FROM series")
-    team = {k: json.loads(v).get("team") for k, v in zip(labels["key"], labels["labels"],
-                                                             strict=True)}
+    team = {
+        k: json.loads(v).get("team") for k, v in zip(labels["key"], labels["labels"], strict=True)
+    }
     got = _strict_json(_cli(capsys, path, "--json", "--label", "team=planning"))
     assert got == [r for r in everything if team[r["series_id"]] == "planning"] and got
 
 
-def test_sort_worst_first_and_limit(store: tuple[Path, Config, Engine],
-                                    capsys: pytest.CaptureFixture[str]) -> None:
+def test_sort_worst_first_and_limit(
+    store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
+) -> None:
     path, _config, _engine = store
     everything = _strict_json(_cli(capsys, path, "--json"))
     worst = sorted(everything, key=lambda r: -r["mae"])[:4]
     got = _strict_json(_cli(capsys, path, "--json", "--sort", "mae", "--limit", "4"))
     assert [r["mae"] for r in got] == [r["mae"] for r in worst]
-    gaps = sorted(max(abs(v - float(k) / 100) for k, v in r["coverage"].items())
-                  for r in everything)[::-1][:3]
+    gaps = sorted(
+        max(abs(v - float(k) / 100) for k, v in r["coverage"].items()) for r in everything
+    )[::-1][:3]
     got = _strict_json(_cli(capsys, path, "--json", "--sort", "coverage", "--limit", "3"))
     assert [max(abs(v - float(k) / 100) for k, v in r["coverage"].items()) for r in got] == gaps
 
 
-def test_csv_has_the_json_values(store: tuple[Path, Config, Engine],
-                                 capsys: pytest.CaptureFixture[str]) -> None:
+def test_csv_has_the_json_values(
+    store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
+) -> None:
     path, _config, _engine = store
     rows = _strict_json(_cli(capsys, path, "--json"))
     table = list(csv.DictReader(io.StringIO(_cli(capsys, path, "--csv"))))
@@ -183,8 +198,9 @@ def test_csv_has_the_json_values(store: tuple[Path, Config, Engine],
         assert float(line["pinball_90"]) == pytest.approx(row["pinball"]["90"])
 
 
-def test_table_shows_worst_rows_first(store: tuple[Path, Config, Engine],
-                                      capsys: pytest.CaptureFixture[str]) -> None:
+def test_table_shows_worst_rows_first(
+    store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
+) -> None:
     path, _config, _engine = store
     out = _cli(capsys, path, "--horizon", "all", "--limit", "3", "--window", "latest")
     assert "worst mase first" in out and "3 of 12 rows" in out
@@ -209,8 +225,9 @@ def test_pages_of_one_series_give_the_same_rows(store_url: str) -> None:
         assert [r["rmse"] for r in whole] == sorted((r["rmse"] for r in whole), reverse=True)
         frame = window_status(engine, window, now, ("2-3",))
         assert len(frame) == len(whole)
-        assert np.isclose(frame["rmse"].sort_values().to_numpy(),
-                          np.sort([r["rmse"] for r in whole])).all()
+        assert np.isclose(
+            frame["rmse"].sort_values().to_numpy(), np.sort([r["rmse"] for r in whole])
+        ).all()
     finally:
         engine.dispose()
 
@@ -223,9 +240,12 @@ def test_pages_of_one_series_give_the_same_rows(store_url: str) -> None:
         (["--horizon", "soon"], "--horizon 'soon': expected a number"),
     ],
 )
-def test_user_errors_are_one_line(store: tuple[Path, Config, Engine],
-                                  capsys: pytest.CaptureFixture[str], args: list[str],
-                                  message: str) -> None:
+def test_user_errors_are_one_line(
+    store: tuple[Path, Config, Engine],
+    capsys: pytest.CaptureFixture[str],
+    args: list[str],
+    message: str,
+) -> None:
     path, _config, _engine = store
     capsys.readouterr()
     assert main(["--config", str(path), "status", *args]) == 2
@@ -233,14 +253,18 @@ def test_user_errors_are_one_line(store: tuple[Path, Config, Engine],
     assert err.startswith(f"aftercast: error: {message}") and "\n" not in err
 
 
-def test_cycle_then_status_on_the_command_line(tmp_path: Path,
-                                               capsys: pytest.CaptureFixture[str]) -> None:
+def test_cycle_then_status_on_the_command_line(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     # The user's path: ingest files, run a cycle, read status.
-    scenario = generate(ScenarioSpec(n_series=2, days=12, horizons=2, models=("a",),
-                                     history_days=14, seed=1))
+    scenario = generate(
+        ScenarioSpec(n_series=2, days=12, horizons=2, models=("a",), history_days=14, seed=1)
+    )
     path = tmp_path / "aftercast.yaml"
-    path.write_text(yaml.safe_dump({"store": {"url": f"sqlite:///{tmp_path / 'c.db'}"},
-                                    **SECTIONS}), encoding="utf-8")
+    path.write_text(
+        yaml.safe_dump({"store": {"url": f"sqlite:///{tmp_path / 'c.db'}"}, **SECTIONS}),
+        encoding="utf-8",
+    )
     for kind, frame in (("actuals", scenario.actuals), ("forecasts", scenario.forecasts)):
         file = tmp_path / f"{kind}.csv"
         frame.to_csv(file, index=False)

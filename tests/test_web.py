@@ -39,7 +39,7 @@ from aftercast.periods import parse_instant
 from aftercast.scenario import ScenarioSpec, generate, write
 from aftercast.store.db import make_engine, migrate
 from aftercast.web.app import create_app
-from tests.conftest import make_config
+from tests.conftest import STATUS_CONTRACT, make_config
 
 TOKEN = "test-token-0123456789"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
@@ -255,25 +255,7 @@ def test_window_pages_add_up_to_status_json(fleet: Fleet, tmp_path: Path) -> Non
     config_path.write_text(f"store: {{url: '{fleet.config.store.url}'}}\n", encoding="utf-8")
     expected = run_cli("--config", str(config_path), "status", "--json", "--now", NOW)
     pages = _all_pages(f"{fleet.url}/v1/windows", {"now": NOW, "limit": 7})
-    contract = [
-        "series_id",
-        "model",
-        "horizon",
-        "n",
-        "me",
-        "mae",
-        "mse",
-        "rmse",
-        "mape",
-        "smape",
-        "wape",
-        "mase",
-        "coverage",
-        "width",
-        "interval_score",
-        "window_start",
-        "window_end",
-    ]
+    contract = STATUS_CONTRACT
     key = lambda r: (r["series_id"], r["model"], str(r["horizon"]))  # noqa: E731
     got = sorted(({k: r[k] for k in contract} for r in pages), key=key)
     assert got == sorted(({k: r[k] for k in contract} for r in expected), key=key)

@@ -76,8 +76,12 @@ def make_pairs(
     return pairs, intervals, quantiles
 
 
-def rows_of(pairs: pd.DataFrame, intervals: pd.DataFrame, quantiles: pd.DataFrame,
-            buckets: list[str] | None = None) -> pd.DataFrame:
+def rows_of(
+    pairs: pd.DataFrame,
+    intervals: pd.DataFrame,
+    quantiles: pd.DataFrame,
+    buckets: list[str] | None = None,
+) -> pd.DataFrame:
     return window_rows(group_horizons(pair_sums(pairs, intervals, quantiles), buckets))
 
 
@@ -93,8 +97,9 @@ def gaussian() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
 def test_days_window_edges_start_exclusive_end_inclusive() -> None:
     # CONTRACT: window.days D holds the pairs with now - D days < target_at <= now.
     targets = np.array([NOW - 2 * DAY, NOW - 2 * DAY + 1, NOW - DAY, NOW, NOW + 1])
-    pairs = pd.DataFrame({"series_id": 1, "model_id": 1, "target_at": targets,
-                          "target_period": np.arange(5)})
+    pairs = pd.DataFrame(
+        {"series_id": 1, "model_id": 1, "target_at": targets, "target_period": np.arange(5)}
+    )
     chosen = select_window(pairs, WindowConfig(days=2), NOW)
     assert chosen["target_at"].tolist() == [NOW - 2 * DAY + 1, NOW - DAY, NOW]
 
@@ -120,8 +125,11 @@ def test_window_measures_match_sklearn(gaussian: tuple[np.ndarray, ...]) -> None
     y = y.copy()
     y[:7] = 0.0  # zero actuals: left out of MAPE and counted (CONTRACT)
     rows = rows_of(*make_pairs(y, f, horizon), buckets=["2-3"])
-    for label, mask in [(1, horizon == 1), ("2-3", (horizon >= 2) & (horizon <= 3)),
-                        ("all", np.ones_like(horizon, dtype=bool))]:
+    for label, mask in [
+        (1, horizon == 1),
+        ("2-3", (horizon >= 2) & (horizon <= 3)),
+        ("all", np.ones_like(horizon, dtype=bool)),
+    ]:
         row = rows[rows["horizon"] == label].iloc[0]
         yy, ff = y[mask], f[mask]
         nonzero = yy != 0
@@ -203,16 +211,20 @@ errors = st.lists(st.floats(-1e6, 1e6, allow_nan=False), min_size=1, max_size=40
 
 
 @settings(max_examples=50, deadline=None)
-@given(e=errors, horizons=st.lists(st.integers(1, 4), min_size=40, max_size=40),
-       width=st.floats(0.0, 1e5))
+@given(
+    e=errors,
+    horizons=st.lists(st.integers(1, 4), min_size=40, max_size=40),
+    width=st.floats(0.0, 1e5),
+)
 def test_mae_at_most_rmse_and_coverage_a_share(
     e: list[float], horizons: list[int], width: float
 ) -> None:
     # MAE <= RMSE (Jensen; common practice) and coverage in [0, 1], for every row.
     err = np.asarray(e)
     f = np.full(len(err), 100.0)
-    pairs, intervals, quantiles = make_pairs(f + err, f, np.asarray(horizons[: len(err)]),
-                                             sigma=width / 2.5631 + 1e-9)
+    pairs, intervals, quantiles = make_pairs(
+        f + err, f, np.asarray(horizons[: len(err)]), sigma=width / 2.5631 + 1e-9
+    )
     rows = rows_of(pairs, intervals, quantiles, buckets=["1-2"])
     assert (rows["mae"] <= rows["rmse"] * (1 + 1e-12) + 1e-12).all()
     assert rows["coverage_80"].between(0.0, 1.0).all()

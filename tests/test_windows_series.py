@@ -46,17 +46,24 @@ def test_hourly_series_across_daylight_saving_change(engine: Engine, store_url: 
     # 2026-03-29 02:00 local does not exist: clocks jump from 02:00 to 03:00.
     hours = pd.date_range("2026-03-28 00:00", "2026-03-30 00:00", freq="h", tz=zone)
     values = np.arange(len(hours), dtype=float) % 17 + 10.0
-    actuals = [{"series_id": "load", "observed_at": t.strftime(LOCAL), "value": v}
-               for t, v in zip(hours, values, strict=True)]
+    actuals = [
+        {"series_id": "load", "observed_at": t.strftime(LOCAL), "value": v}
+        for t, v in zip(hours, values, strict=True)
+    ]
     forecasts: list[dict[str, Any]] = []
     value_at = dict(zip(hours, values, strict=True))
     for issued in hours[:-3]:
         for h in (1, 3):
             target = issued + pd.Timedelta(hours=h)  # elapsed hours, as pandas counts them
-            forecasts.append({"series_id": "load", "model": "m",
-                              "issued_at": (issued + pd.Timedelta(minutes=30)).strftime(LOCAL),
-                              "target_at": target.strftime(LOCAL),
-                              "point": value_at[target] + h})
+            forecasts.append(
+                {
+                    "series_id": "load",
+                    "model": "m",
+                    "issued_at": (issued + pd.Timedelta(minutes=30)).strftime(LOCAL),
+                    "target_at": target.strftime(LOCAL),
+                    "point": value_at[target] + h,
+                }
+            )
     ingest_records(engine, config, "actuals", actuals, "test")
     report = ingest_records(engine, config, "forecasts", forecasts, "test")
     assert report.rejected == 0
@@ -94,8 +101,10 @@ def test_weekly_co2_with_seasonal_naive_forecasts(
     y = co2_weeks.to_numpy()
     dates = co2_weeks.index.tz_localize("UTC")
     stamp = "%Y-%m-%dT%H:%M:%SZ"
-    actuals = [{"series_id": "co2", "observed_at": d.strftime(stamp), "value": v}
-               for d, v in zip(dates, y, strict=True)]
+    actuals = [
+        {"series_id": "co2", "observed_at": d.strftime(stamp), "value": v}
+        for d, v in zip(dates, y, strict=True)
+    ]
     forecasts, expected = [], []
     for origin in range(n - 30, n - 1):
         # Seasonal naive: the value of the same week a year before the target.
@@ -104,9 +113,15 @@ def test_weekly_co2_with_seasonal_naive_forecasts(
             if target >= n:
                 continue
             f = y[target - m]
-            forecasts.append({"series_id": "co2", "model": "snaive",
-                              "issued_at": (dates[origin] + pd.Timedelta(hours=1)).strftime(stamp),
-                              "target_at": dates[target].strftime(stamp), "point": f})
+            forecasts.append(
+                {
+                    "series_id": "co2",
+                    "model": "snaive",
+                    "issued_at": (dates[origin] + pd.Timedelta(hours=1)).strftime(stamp),
+                    "target_at": dates[target].strftime(stamp),
+                    "point": f,
+                }
+            )
             # Scales over the weeks strictly before the issue week (Hyndman and Koehler, 2006).
             diffs = y[m:origin] - y[: origin - m]
             expected.append((target, h, y[target], f, np.abs(diffs).mean(), (diffs**2).mean()))
@@ -136,13 +151,32 @@ def test_daily_window_edges_through_the_store(engine: Engine, store_url: str) ->
         windows=[{"name": "two", "points": 2}],
     )
     days = pd.date_range("2026-01-01", periods=10, freq="D", tz="UTC")
-    ingest_records(engine, config, "actuals",
-                   [{"series_id": "s", "observed_at": d.isoformat(), "value": 10.0 + i}
-                    for i, d in enumerate(days)], "test")
-    ingest_records(engine, config, "forecasts",
-                   [{"series_id": "s", "model": "m", "issued_at": (d - pd.Timedelta(hours=18))
-                     .isoformat(), "target_at": d.isoformat(), "point": 10.0}
-                    for d in days[1:]], "test")
+    ingest_records(
+        engine,
+        config,
+        "actuals",
+        [
+            {"series_id": "s", "observed_at": d.isoformat(), "value": 10.0 + i}
+            for i, d in enumerate(days)
+        ],
+        "test",
+    )
+    ingest_records(
+        engine,
+        config,
+        "forecasts",
+        [
+            {
+                "series_id": "s",
+                "model": "m",
+                "issued_at": (d - pd.Timedelta(hours=18)).isoformat(),
+                "target_at": d.isoformat(),
+                "point": 10.0,
+            }
+            for d in days[1:]
+        ],
+        "test",
+    )
     now = int(days[6].timestamp())  # exactly on a target: included; days[3] is excluded
     _run(engine, config, now)
     three = _row(current_windows(engine, config, now, "three"), "all")

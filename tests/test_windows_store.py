@@ -105,8 +105,9 @@ def assert_same_rows(got: pd.DataFrame, want: pd.DataFrame) -> None:
         frame = frame.sort_values(["series_id", "model_id", "_h"]).reset_index(drop=True)
         return frame[columns].astype({"horizon": str} if "horizon" in columns else {})
 
-    pd.testing.assert_frame_equal(ordered(got, measures), ordered(want, measures),
-                                  check_dtype=False, rtol=1e-9)
+    pd.testing.assert_frame_equal(
+        ordered(got, measures), ordered(want, measures), check_dtype=False, rtol=1e-9
+    )
     if got["window"].iloc[0] == "latest":  # a points window spans its first to last target
         spans = ordered(got, ["window_start", "window_end"]).to_numpy()
         np.testing.assert_array_equal(spans, ordered(want, ["first_target", "last_target"]))
@@ -138,30 +139,49 @@ def _stamp(day: int, hour: int = 0) -> str:
 
 def actual_rows(series: str, first: int, values: list[int]) -> list[dict[str, Any]]:
     """Actuals of `series` on consecutive days from `first` (a revision where one exists)."""
-    return [{"series_id": series, "observed_at": _stamp(first + i), "value": float(v)}
-            for i, v in enumerate(values)]
+    return [
+        {"series_id": series, "observed_at": _stamp(first + i), "value": float(v)}
+        for i, v in enumerate(values)
+    ]
 
 
 def forecast_rows(series: str, model: str, issue_day: int, level: int) -> list[dict[str, Any]]:
     rows = []
     for h in (1, 2, 3):
         point = float(level + h)
-        rows.append({
-            "series_id": series, "model": model, "issued_at": _stamp(issue_day, 6),
-            "target_at": _stamp(issue_day + h), "point": point,
-            "lower_80": point - 2 - h, "upper_80": point + 2 + h,
-            "q_10": point - 2, "q_50": point, "q_90": point + 2,
-        })
+        rows.append(
+            {
+                "series_id": series,
+                "model": model,
+                "issued_at": _stamp(issue_day, 6),
+                "target_at": _stamp(issue_day + h),
+                "point": point,
+                "lower_80": point - 2 - h,
+                "upper_80": point + 2 + h,
+                "q_10": point - 2,
+                "q_50": point,
+                "q_90": point + 2,
+            }
+        )
     return rows
 
 
 day = st.integers(0, 9)
 steps = st.lists(
     st.one_of(
-        st.tuples(st.just("actuals"), st.sampled_from(SERIES), st.integers(0, 6),
-                  st.lists(st.integers(0, 40), min_size=1, max_size=7)),
-        st.tuples(st.just("forecasts"), st.sampled_from(SERIES), st.sampled_from(MODELS), day,
-                  st.integers(0, 40)),
+        st.tuples(
+            st.just("actuals"),
+            st.sampled_from(SERIES),
+            st.integers(0, 6),
+            st.lists(st.integers(0, 40), min_size=1, max_size=7),
+        ),
+        st.tuples(
+            st.just("forecasts"),
+            st.sampled_from(SERIES),
+            st.sampled_from(MODELS),
+            day,
+            st.integers(0, 40),
+        ),
         st.tuples(st.just("cycle"), st.integers(0, 12), st.sampled_from([0, 7, 23])),
     ),
     min_size=3,
@@ -204,11 +224,11 @@ def test_a_refresh_recomputes_only_touched_and_swept_keys(new_store: Callable[[]
     engine, config = open_store(new_store(), **WINDOWS)
     try:
         for series in SERIES:
-            ingest_records(engine, config, "actuals",
-                           actual_rows(series, 0, [5, 6, 7, 8, 9, 10, 11, 12]), "t")
+            ingest_records(
+                engine, config, "actuals", actual_rows(series, 0, [5, 6, 7, 8, 9, 10, 11, 12]), "t"
+            )
             for model in MODELS:
-                ingest_records(engine, config, "forecasts", forecast_rows(series, model, 3, 9),
-                               "t")
+                ingest_records(engine, config, "forecasts", forecast_rows(series, model, 3, 9), "t")
         now = int((START + pd.Timedelta(days=5)).timestamp())
         matched = match(engine, now)
         assert all(r.full for r in refresh_windows(engine, config, now, matched.touched))
@@ -225,10 +245,13 @@ def test_a_refresh_recomputes_only_touched_and_swept_keys(new_store: Callable[[]
         on_turn = [s for s in (1, 2) if s % REBASE_DAYS == (later // DAY) % REBASE_DAYS]
         assert [(r.full, r.keys) for r in refreshed] == [(False, 2 * len(on_turn)), (False, 4)]
         for name in ("short", "latest"):
-            assert_same_rows(current_windows(engine, config, later, name),
-                             full_recomputation(engine, config, later, name))
-        assert_same_rows(sql_rows(engine, config, now, "short"),
-                         full_recomputation(engine, config, now, "short"))
+            assert_same_rows(
+                current_windows(engine, config, later, name),
+                full_recomputation(engine, config, later, name),
+            )
+        assert_same_rows(
+            sql_rows(engine, config, now, "short"), full_recomputation(engine, config, now, "short")
+        )
     finally:
         engine.dispose()
 
@@ -250,8 +273,10 @@ def test_a_revision_inside_a_moving_window_is_recomputed(
         later = now + 6 * 3600
         refresh_windows(engine, config, later, match(engine, later).touched)
         for name in ("short", "latest"):
-            assert_same_rows(current_windows(engine, config, later, name),
-                             full_recomputation(engine, config, later, name))
+            assert_same_rows(
+                current_windows(engine, config, later, name),
+                full_recomputation(engine, config, later, name),
+            )
     finally:
         engine.dispose()
 
@@ -284,8 +309,10 @@ def test_a_cycle_that_stopped_early_forces_a_full_refresh(new_store: Callable[[]
         run_cycle(engine, config, now)
         with engine.begin() as connection:  # one cycle crashed after matching, one is running
             for _ in range(2):
-                connection.execute(text("INSERT INTO cycles (now, started_at, stats) "
-                                        "VALUES (:n, 0, '{}')"), {"n": now})
+                connection.execute(
+                    text("INSERT INTO cycles (now, started_at, stats) VALUES (:n, 0, '{}')"),
+                    {"n": now},
+                )
         assert all(r.full for r in refresh_windows(engine, config, now, None))
         assert not any(r.full for r in refresh_windows(engine, config, now, None))
     finally:

@@ -12,7 +12,6 @@ import importlib
 import json
 import sys
 from collections.abc import Callable, Sequence
-from pathlib import Path
 from typing import Any
 
 from aftercast import __version__

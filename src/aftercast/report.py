@@ -36,8 +36,21 @@ EXTRAS = ["mape_excluded", "rmsse", "tracking_signal", "crps"]
 NESTED = ["coverage", "width", "interval_score", "pinball", "pit"]
 # Sort keys, worst first: larger is worse, for ME and the tracking signal in absolute value,
 # for coverage the largest gap between a level's coverage and its nominal share.
-SORTS = ("key", "mae", "mse", "rmse", "mape", "smape", "wape", "mase", "rmsse", "crps", "me",
-         "tracking_signal", "coverage")
+SORTS = (
+    "key",
+    "mae",
+    "mse",
+    "rmse",
+    "mape",
+    "smape",
+    "wape",
+    "mase",
+    "rmsse",
+    "crps",
+    "me",
+    "tracking_signal",
+    "coverage",
+)
 PAGE_SERIES = 2_000
 _STATUS_TABLE = Table(
     "tmp_status_rows",
@@ -141,9 +154,7 @@ class StatusResult:
     rows: Iterator[dict[str, Any]] = field(default_factory=lambda: iter(()))
 
 
-def _series_pages(
-    connection: Connection, query: StatusQuery, size: int
-) -> Iterator[pd.DataFrame]:
+def _series_pages(connection: Connection, query: StatusQuery, size: int) -> Iterator[pd.DataFrame]:
     """Pages of (id, key) of the series matching the pattern and labels, in key order."""
     pattern = re.compile(translate(query.series)) if query.series else None
     for page in series_pages(connection, size, by="key"):
@@ -205,8 +216,9 @@ def _park(connection: Connection, rows: pd.DataFrame, query: StatusQuery) -> dic
 
 def _create_parking(connection: Connection) -> None:
     columns = "sort_value DOUBLE PRECISION, series_key TEXT, model TEXT, horizon_rank BIGINT, "
-    connection.execute(text(f"CREATE TEMP TABLE IF NOT EXISTS {_STATUS_TABLE.name} "
-                            f"({columns}body TEXT)"))
+    connection.execute(
+        text(f"CREATE TEMP TABLE IF NOT EXISTS {_STATUS_TABLE.name} ({columns}body TEXT)")
+    )
     connection.execute(text(f"DELETE FROM {_STATUS_TABLE.name}"))
 
 

@@ -32,7 +32,13 @@ from aftercast.config import Config, WindowConfig
 from aftercast.errors import AftercastError
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
-from aftercast.store.window_delta import apply_delta, rescored_keys, scored_keys, strip_delta
+from aftercast.store.window_delta import (
+    apply_delta,
+    rescored_keys,
+    scored_keys,
+    strip_delta,
+    without_extremes,
+)
 from aftercast.store.window_sums import (
     compute_sums,
     delete_stored,
@@ -41,7 +47,7 @@ from aftercast.store.window_sums import (
     stored_floors,
     window_spec,
 )
-from aftercast.windows import DAY, EXTREMES, KEY, group_horizons, window_rows
+from aftercast.windows import DAY, EXTREMES, KEY, WindowSums, group_horizons, window_rows
 
 PAGE_SERIES = 5_000
 # Every key of a `days` window is recomputed from its pairs once in this many days.
@@ -85,8 +91,7 @@ def _missed_cycles(connection: Connection, mark: dict[str, Any], latest: int) ->
     """Did a cycle start after the last refresh and stop before refreshing (or is it running)?"""
     count = connection.execute(
         text(
-            "SELECT COUNT(*) FROM cycles WHERE id > :after AND id < :latest "
-            "AND finished_at IS NULL"
+            "SELECT COUNT(*) FROM cycles WHERE id > :after AND id < :latest AND finished_at IS NULL"
         ),
         {"after": mark["cycle_id"], "latest": latest},
     ).scalar_one()
@@ -128,7 +133,10 @@ class _Plan:
 
 
 def _delta_plan(
-    connection: Connection, window: WindowConfig, before: int, now: int,
+    connection: Connection,
+    window: WindowConfig,
+    before: int,
+    now: int,
     touched: pd.DataFrame | None,
 ) -> _Plan:
     """A `days` window moving forward: deltas for most keys, recompute the rest.
@@ -165,8 +173,10 @@ def _plan(
 ) -> _Plan:
     """What changed since the last refresh, and so what to do (see the module docstring)."""
     mark = _mark(connection, window.name)
-    if mark is None or mark["spec"] != window_spec(window) or _missed_cycles(
-        connection, mark, latest
+    if (
+        mark is None
+        or mark["spec"] != window_spec(window)
+        or _missed_cycles(connection, mark, latest)
     ):
         return _Plan(None)
     before = int(mark["now"])
@@ -184,6 +194,15 @@ def _plan(
         # The N latest periods only move up as the clock does: no need to rank older ones.
         keys = stored_floors(connection, window.name, keys)
     return _Plan(keys.reset_index(drop=True))
+
+
+def _sums_to_store(
+    connection: Connection, window: WindowConfig, now: int, keys: pd.DataFrame
+) -> WindowSums:
+    """The sums to store for `keys`; a `days` window stores no extremes, whichever path
+    (recompute or delta) brought it to the clock."""
+    sums = compute_sums(connection, window, now, keys)
+    return without_extremes(sums) if window.days is not None else sums
 
 
 def _write_mark(connection: Connection, window: WindowConfig, now: int, cycle_id: int) -> None:
@@ -233,20 +252,21 @@ def _refresh_window(
         count = 0
         for page in series_pages(connection, PAGE_SERIES):
             ids = pd.DataFrame({"series_id": page["id"].to_numpy()})
-            sums = compute_sums(connection, window, now, ids)
+            sums = _sums_to_store(connection, window, now, ids)
             store_sums(connection, window.name, sums)
             count += len(sums.points[KEY].drop_duplicates())
         refresh = WindowRefresh(window.name, True, count)
     else:
         if plan.delta_from is not None:
             span = int((window.days or 0) * DAY)
-            apply_delta(connection, window.name, strip_delta(connection, plan.delta_from, now,
-                                                             span))
+            apply_delta(
+                connection, window.name, strip_delta(connection, plan.delta_from, now, span)
+            )
         keys = plan.keys
         for start in range(0, len(keys), _KEYS_PER_BATCH):
             batch = keys.iloc[start : start + _KEYS_PER_BATCH]
             delete_stored(connection, window.name, batch[KEY])
-            store_sums(connection, window.name, compute_sums(connection, window, now, batch))
+            store_sums(connection, window.name, _sums_to_store(connection, window, now, batch))
         refresh = WindowRefresh(window.name, False, len(keys))
     _write_mark(connection, window, now, latest)
     return refresh

@@ -7,9 +7,9 @@ from __future__ import annotations
 
 import argparse
 import sys
-from typing import Any
 from importlib import resources
 from pathlib import Path
+from typing import Any
 
 from sqlalchemy import Engine
 
@@ -159,8 +159,12 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 def register(commands: Any) -> None:
     init = commands.add_parser("init", help="create or migrate the store")
-    init.add_argument("--write-config", type=Path, metavar="PATH",
-                      help="write a commented starter config to PATH instead")
+    init.add_argument(
+        "--write-config",
+        type=Path,
+        metavar="PATH",
+        help="write a commented starter config to PATH instead",
+    )
     init.set_defaults(handler=cmd_init)
 
     ingest = commands.add_parser("ingest", help="load forecasts, actuals or series from files")
@@ -182,6 +186,9 @@ def register(commands: Any) -> None:
     export.set_defaults(handler=cmd_scores)
 
     demo = commands.add_parser("demo", help="the whole job end to end on an invented scenario")
-    demo.add_argument("--folder", type=Path,
-                      help="where to put the demo files (default: a new folder under ./demo-output)")
+    demo.add_argument(
+        "--folder",
+        type=Path,
+        help="where to put the demo files (default: a new folder under ./demo-output)",
+    )
     demo.set_defaults(handler=cmd_demo)

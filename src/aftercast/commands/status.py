@@ -147,13 +147,24 @@ def register(commands: Any) -> None:
     output.add_argument("--csv", action="store_true", help="print CSV, one row per line")
     status.add_argument("--now", help="evaluation time, ISO 8601 (default: the clock)")
     status.add_argument("--window", help="named window (default: the first configured)")
-    status.add_argument("--sort", choices=SORTS,
-                        help="worst first by this measure (table default: mase; else key order)")
+    status.add_argument(
+        "--sort",
+        choices=SORTS,
+        help="worst first by this measure (table default: mase; else key order)",
+    )
     status.add_argument("--series", metavar="PATTERN", help="series keys matching a shell pattern")
     status.add_argument("--model", help="only this model")
     status.add_argument("--horizon", help="only this horizon: 3, a bucket such as 2-7, or all")
-    status.add_argument("--label", action="append", metavar="NAME=VALUE",
-                        help="only series with this label (repeat to require several)")
-    status.add_argument("--limit", type=int, metavar="N",
-                        help=f"at most N rows (table default {TABLE_LIMIT}; 0 for all)")
+    status.add_argument(
+        "--label",
+        action="append",
+        metavar="NAME=VALUE",
+        help="only series with this label (repeat to require several)",
+    )
+    status.add_argument(
+        "--limit",
+        type=int,
+        metavar="N",
+        help=f"at most N rows (table default {TABLE_LIMIT}; 0 for all)",
+    )
     status.set_defaults(handler=cmd_status)

@@ -21,8 +21,19 @@ from aftercast.store.schema_windows import SUM_TABLES
 from aftercast.store.window_sums import range_sums
 from aftercast.windows import EXTREMES, HORIZON_KEY, WindowSums
 
-_INTEGER_COLUMNS = {"series_id", "model_id", "horizon", "n", "n_ape", "n_sape", "n_scaled",
-                    "n_sq_scaled", "hits", "below", *EXTREMES}
+_INTEGER_COLUMNS = {
+    "series_id",
+    "model_id",
+    "horizon",
+    "n",
+    "n_ape",
+    "n_sape",
+    "n_scaled",
+    "n_sq_scaled",
+    "hits",
+    "below",
+    *EXTREMES,
+}
 
 
 def rescored_keys(connection: Connection, now: int, since: int, until: int) -> pd.DataFrame:
@@ -38,26 +49,35 @@ def rescored_keys(connection: Connection, now: int, since: int, until: int) -> p
 def scored_keys(connection: Connection, now: int) -> pd.DataFrame:
     """(series, model) keys with any pair scored at `now`."""
     return read_frame(
-        connection, "SELECT DISTINCT series_id, model_id FROM pairs WHERE scored_at = :now",
+        connection,
+        "SELECT DISTINCT series_id, model_id FROM pairs WHERE scored_at = :now",
         {"now": now},
     ).astype("int64")
 
 
 def _difference(entered: pd.DataFrame, left: pd.DataFrame, extra: list[str]) -> pd.DataFrame:
-    """Entered minus left, per key; extremes from the entered pairs (stored ones stay)."""
+    """Entered minus left, per key. Extremes are zero: a `days` window keeps none (its edges
+    follow the clock), so every path stores the same rows (`without_extremes`)."""
     by = [*HORIZON_KEY, *extra]
     sums = [c for c in entered.columns if c not in by and c not in EXTREMES]
     negative = left.copy()
     negative[sums] = -negative[sums]
-    both = pd.concat([entered.drop(columns=list(EXTREMES), errors="ignore"),
-                      negative.drop(columns=list(EXTREMES), errors="ignore")])
+    both = pd.concat(
+        [
+            entered.drop(columns=list(EXTREMES), errors="ignore"),
+            negative.drop(columns=list(EXTREMES), errors="ignore"),
+        ]
+    )
     delta = both.groupby(by, as_index=False)[sums].sum()
-    extremes = [c for c in EXTREMES if c in entered.columns]
-    if extremes:
-        delta = delta.merge(entered[[*by, *extremes]], on=by, how="left")
-        # A key that only lost pairs keeps its stored extremes; these fill NOT NULL columns.
-        delta[extremes] = delta[extremes].fillna(0)
+    for column in EXTREMES:
+        if column in entered.columns:
+            delta[column] = 0
     return delta
+
+
+def without_extremes(sums: WindowSums) -> WindowSums:
+    """`sums` with the extremes zeroed, as a `days` window stores them."""
+    return WindowSums(sums.points.assign(**{c: 0 for c in EXTREMES}), sums.levels, sums.quantiles)
 
 
 def strip_delta(connection: Connection, before: int, now: int, span: int) -> WindowSums:
@@ -73,9 +93,7 @@ def strip_delta(connection: Connection, before: int, now: int, span: int) -> Win
 
 def _staged_delta(connection: Connection, part: str, frame: pd.DataFrame) -> str:
     name = f"tmp_window_delta_{part}"
-    columns = [
-        Column(c, BigInteger if c in _INTEGER_COLUMNS else Float) for c in frame.columns
-    ]
+    columns = [Column(c, BigInteger if c in _INTEGER_COLUMNS else Float) for c in frame.columns]
     table = Table(name, MetaData(), *columns)
     kinds = ", ".join(
         f"{c.name} {'BIGINT' if c.name in _INTEGER_COLUMNS else 'DOUBLE PRECISION'}"
@@ -100,18 +118,22 @@ def apply_delta(connection: Connection, window_name: str, delta: WindowSums) -> 
         assign = ", ".join(f"{c} = {table.name}.{c} + d.{c}" for c in sums)
         params = {"w": window_name}
         connection.execute(
-            text(f"UPDATE {table.name} SET {assign} FROM {staged} d "
-                 f"WHERE {table.name}.window_name = :w AND {match}"),
+            text(
+                f"UPDATE {table.name} SET {assign} FROM {staged} d "
+                f"WHERE {table.name}.window_name = :w AND {match}"
+            ),
             params,
         )
         columns = ", ".join(frame.columns)
         exists = " AND ".join(f"t.{k} = d.{k}" for k in keys)
         connection.execute(
-            text(f"INSERT INTO {table.name} (window_name, {columns}) "
-                 f"SELECT CAST(:name AS VARCHAR(64)), {', '.join(f'd.{c}' for c in frame.columns)} "
-                 f"FROM {staged} d "
-                 f"WHERE NOT EXISTS (SELECT 1 FROM {table.name} t WHERE "
-                 f"t.window_name = :w AND {exists})"),
+            text(
+                f"INSERT INTO {table.name} (window_name, {columns}) "
+                f"SELECT CAST(:name AS VARCHAR(64)), {', '.join(f'd.{c}' for c in frame.columns)} "
+                f"FROM {staged} d "
+                f"WHERE NOT EXISTS (SELECT 1 FROM {table.name} t WHERE "
+                f"t.window_name = :w AND {exists})"
+            ),
             {**params, "name": window_name},
         )
         connection.execute(

@@ -98,8 +98,9 @@ def _points_cutoffs(
             cutoffs = pd.concat([cutoffs[cutoffs["periods"] >= points], unfloored])
     if cutoffs.empty:
         cutoffs = pd.DataFrame({"series_id": [], "model_id": [], "first_period": []})
-    return stage_keys(connection, "window_cutoffs", cutoffs[["series_id", "model_id",
-                                                             "first_period"]])
+    return stage_keys(
+        connection, "window_cutoffs", cutoffs[["series_id", "model_id", "first_period"]]
+    )
 
 
 def _selection(
