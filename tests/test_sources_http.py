@@ -21,8 +21,7 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 from sqlalchemy import Engine, text
 
-from aftercast.sources import pull_all
-from aftercast.sources.pull import add_listener, remove_listener
+from aftercast.sources.pull import add_listener, pull_all, remove_listener
 from aftercast.web.metrics import Metrics
 from tests.conftest import make_config
 

@@ -18,7 +18,6 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from aftercast.alerts.config import Channels, DeliveryConfig, Routes, Rules
-from aftercast.coordination import CoordinationConfig
 from aftercast.detect.settings import BaselineConfig, BenchmarkConfig, DetectionConfig
 from aftercast.errors import ConfigError
 from aftercast.sources import SourceList
@@ -104,6 +103,20 @@ class WindowConfig(_Strict):
 
 class IngestConfig(_Strict):
     chunk_rows: int = Field(200_000, ge=1_000)
+
+
+class CoordinationConfig(BaseModel):
+    """`coordination:` - how replicas sharing one store split the series between them."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+    shards: int = Field(16, ge=1, le=4096)
+    lease_seconds: int = Field(60, ge=2)
+
+    @property
+    def renew_seconds(self) -> float:
+        """How often a holder renews, and how often the daemon should look for due shards."""
+        return self.lease_seconds / 3
 
 
 class Config(_Strict):

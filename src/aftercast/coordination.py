@@ -34,16 +34,15 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
-from pydantic import BaseModel, ConfigDict, Field
 from sqlalchemy import Connection, Engine, event
 
+from aftercast.config import Config, CoordinationConfig
 from aftercast.logs import log_event
 from aftercast.store import leases
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
 
 if TYPE_CHECKING:
-    from aftercast.config import Config
     from aftercast.cycle import CycleReport
     from aftercast.sources.base import Schedule
 
@@ -51,20 +50,6 @@ log = logging.getLogger("aftercast.coordination")
 
 # SipHash-2-4 key (16 bytes) of the shard hash; changing it would move every series.
 SHARD_HASH_KEY = "aftercast shards"
-
-
-class CoordinationConfig(BaseModel):
-    """`coordination:` - how replicas sharing one store split the series between them."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-    shards: int = Field(16, ge=1, le=4096)
-    lease_seconds: int = Field(60, ge=2)
-
-    @property
-    def renew_seconds(self) -> float:
-        """How often a holder renews, and how often the daemon should look for due shards."""
-        return self.lease_seconds / 3
 
 
 class LeaseLost(RuntimeError):

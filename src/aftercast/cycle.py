@@ -21,7 +21,7 @@ from aftercast.config import Config
 from aftercast.detect.run import detect
 from aftercast.matching import match
 from aftercast.notify.deliver import deliver_due
-from aftercast.sources import pull_all
+from aftercast.sources.pull import pull_all
 from aftercast.store import schema
 from aftercast.store.db import write
 from aftercast.window_store import refresh_windows

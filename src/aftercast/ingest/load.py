@@ -39,12 +39,13 @@ def enqueue(connection: Connection, series_id: np.ndarray, period: np.ndarray, k
         return
     keys["kind"] = kind
     staged = stage_keys(connection, "queue", keys)
+    # ON CONFLICT rather than NOT EXISTS: with a fresh, unanalysed staging table PostgreSQL
+    # planned the anti-join as a scan of the queue per staged row.
     connection.execute(
         text(
             "INSERT INTO match_queue (series_id, period, kind) "
-            f"SELECT t.series_id, t.period, t.kind "
-            f"FROM {staged} t WHERE NOT EXISTS (SELECT 1 FROM match_queue q WHERE "
-            "q.series_id = t.series_id AND q.period = t.period AND q.kind = t.kind)"
+            f"SELECT t.series_id, t.period, t.kind FROM {staged} t WHERE true "
+            "ON CONFLICT (series_id, period, kind) DO NOTHING"
         )
     )
 

@@ -4,8 +4,8 @@
 keeps; `folder`, `sql` and `http` are the types; adding one is a new module and one line in
 `SOURCE_TYPES`. `SourceList` is the validated `sources:` config section (discriminated by
 `type`, names unique). `pull_all` (the cycle's first stage) and `pull_source` (what the daemon
-schedules) live in `pull`; nothing here imports the ingest path at import time, because the
-ingest path imports this package (for `files`).
+schedules) live in `pull`, which is not imported here: the config reads this package for its
+settings, and `pull` reaches the ingest path, which reads the config.
 """
 
 from __future__ import annotations
@@ -17,7 +17,6 @@ from pydantic import AfterValidator, Field
 from aftercast.sources.base import Source, SourceResult, SourceSettings
 from aftercast.sources.folder import FolderSettings, FolderSource
 from aftercast.sources.http import HttpSettings, HttpSource
-from aftercast.sources.pull import pull_all, pull_source
 from aftercast.sources.sql import SqlSettings, SqlSource
 
 SOURCE_TYPES: dict[str, type[Source]] = {
@@ -52,6 +51,4 @@ __all__ = [
     "SourceResult",
     "SourceSettings",
     "build_source",
-    "pull_all",
-    "pull_source",
 ]

@@ -106,36 +106,37 @@ def _staged_delta(connection: Connection, part: str, frame: pd.DataFrame) -> str
 
 
 def apply_delta(connection: Connection, window_name: str, delta: WindowSums) -> None:
-    """Add `delta` to the stored sums of `window_name`; drop rows left without pairs."""
+    """Add `delta` to the stored sums of `window_name`; drop rows left without pairs.
+
+    One upsert per table (INSERT ... ON CONFLICT DO UPDATE, which both stores speak): an
+    UPDATE ... FROM plus an INSERT ... WHERE NOT EXISTS let PostgreSQL's planner, which knows
+    nothing of the fresh staging table, pick a plan that scanned the stored sums per row.
+    """
     for part, (table, extra) in SUM_TABLES.items():
         frame: pd.DataFrame = getattr(delta, part)
         if frame.empty:
             continue
         staged = _staged_delta(connection, part, frame)
         keys = [*HORIZON_KEY, *([extra] if extra else [])]
-        match = " AND ".join(f"{table.name}.{k} = d.{k}" for k in keys)
         sums = [c for c in frame.columns if c not in keys and c not in EXTREMES]
-        assign = ", ".join(f"{c} = {table.name}.{c} + d.{c}" for c in sums)
-        params = {"w": window_name}
-        connection.execute(
-            text(
-                f"UPDATE {table.name} SET {assign} FROM {staged} d "
-                f"WHERE {table.name}.window_name = :w AND {match}"
-            ),
-            params,
-        )
+        assign = ", ".join(f"{c} = {table.name}.{c} + excluded.{c}" for c in sums)
         columns = ", ".join(frame.columns)
-        exists = " AND ".join(f"t.{k} = d.{k}" for k in keys)
+        params = {"w": window_name}
+        # "WHERE true" keeps SQLite from reading ON CONFLICT as a join constraint.
         connection.execute(
             text(
                 f"INSERT INTO {table.name} (window_name, {columns}) "
-                f"SELECT CAST(:name AS VARCHAR(64)), {', '.join(f'd.{c}' for c in frame.columns)} "
-                f"FROM {staged} d "
-                f"WHERE NOT EXISTS (SELECT 1 FROM {table.name} t WHERE "
-                f"t.window_name = :w AND {exists})"
+                f"SELECT CAST(:w AS VARCHAR(64)), {', '.join(f'd.{c}' for c in frame.columns)} "
+                f"FROM {staged} d WHERE true "
+                f"ON CONFLICT (window_name, {', '.join(keys)}) DO UPDATE SET {assign}"
             ),
-            {**params, "name": window_name},
+            params,
         )
+        match = " AND ".join(f"d.{k} = {table.name}.{k}" for k in keys)
         connection.execute(
-            text(f"DELETE FROM {table.name} WHERE window_name = :w AND n <= 0"), params
+            text(
+                f"DELETE FROM {table.name} WHERE window_name = :w AND n <= 0 "
+                f"AND EXISTS (SELECT 1 FROM {staged} d WHERE {match})"
+            ),
+            params,
         )
