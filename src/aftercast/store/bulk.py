@@ -1,6 +1,7 @@
 """Bulk paths per dialect: inserting data frames, allocating ids, reading frames back.
 
-PostgreSQL gets COPY through psycopg 3 (the frame is written as CSV text by pandas, in C);
+PostgreSQL gets COPY through psycopg 3, in the binary format built with numpy
+(`copy_binary`; CSV text for a type it does not lay out);
 SQLite gets executemany over plain tuples inside one IMMEDIATE transaction, which is the fastest
 path its driver has. Either way no Python code runs per row besides the driver's own.
 """
@@ -15,6 +16,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 from sqlalchemy import BigInteger, Column, Connection, MetaData, Table, text
+
+from aftercast.store import copy_binary
 
 
 def is_postgres(connection: Connection) -> bool:
@@ -43,7 +46,7 @@ def insert_frame(connection: Connection, table: Table, frame: pd.DataFrame) -> i
         return 0
     columns = list(frame.columns)
     if is_postgres(connection):
-        _copy_postgres(connection, table.name, columns, frame)
+        _copy_postgres(connection, table, columns, frame)
     else:
         placeholders = ", ".join("?" for _ in columns)
         sql = f"INSERT INTO {table.name} ({', '.join(columns)}) VALUES ({placeholders})"
@@ -54,16 +57,25 @@ def insert_frame(connection: Connection, table: Table, frame: pd.DataFrame) -> i
 
 
 def _copy_postgres(
-    connection: Connection, name: str, columns: list[str], frame: pd.DataFrame
+    connection: Connection, table: Table, columns: list[str], frame: pd.DataFrame
 ) -> None:
-    buffer = io.StringIO()
-    frame.to_csv(buffer, index=False, header=False, na_rep="\\N", float_format="%.17g")
+    """COPY in PostgreSQL's binary format where every column's type allows it, else as CSV."""
+    types = [table.c[c].type.compile(dialect=connection.dialect) for c in columns]
+    payload = None
+    if all(copy_binary.supported(t) for t in types):
+        payload = copy_binary.encode(frame, types)
+    if payload is None:
+        buffer = io.StringIO()
+        frame.to_csv(buffer, index=False, header=False, na_rep="\\N", float_format="%.17g")
+        options = "FORMAT csv, NULL '\\N'"
+    else:
+        options = "FORMAT binary"
     raw = connection.connection.driver_connection
     assert raw is not None
     with raw.cursor() as cursor:
-        sql = f"COPY {name} ({', '.join(columns)}) FROM STDIN WITH (FORMAT csv, NULL '\\N')"
+        sql = f"COPY {table.name} ({', '.join(columns)}) FROM STDIN WITH ({options})"
         with cursor.copy(sql) as copy:
-            copy.write(buffer.getvalue())
+            copy.write(payload if payload is not None else buffer.getvalue())
 
 
 def allocate_ids(connection: Connection, table: Table, count: int) -> np.ndarray:
