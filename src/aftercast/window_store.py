@@ -33,10 +33,9 @@ from aftercast.errors import AftercastError
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
 from aftercast.store.window_delta import (
-    apply_delta,
+    apply_strips,
     rescored_keys,
     scored_keys,
-    strip_delta,
     without_extremes,
 )
 from aftercast.store.window_sums import (
@@ -259,9 +258,7 @@ def _refresh_window(
     else:
         if plan.delta_from is not None:
             span = int((window.days or 0) * DAY)
-            apply_delta(
-                connection, window.name, strip_delta(connection, plan.delta_from, now, span)
-            )
+            apply_strips(connection, window.name, plan.delta_from, now, span)
         keys = plan.keys
         for start in range(0, len(keys), _KEYS_PER_BATCH):
             batch = keys.iloc[start : start + _KEYS_PER_BATCH]

@@ -32,23 +32,77 @@ from aftercast.windows import (
 # Lower than any period ordinal: "no floor".
 NO_FLOOR = -(2**62)
 
-_POINT_SELECT = """
-COUNT(*) AS n, SUM(p.error) AS sum_error, SUM(p.abs_error) AS sum_abs_error,
-SUM(p.sq_error) AS sum_sq_error, COUNT(p.ape) AS n_ape, COALESCE(SUM(p.ape), 0) AS sum_ape,
-COUNT(p.sape) AS n_sape, COALESCE(SUM(p.sape), 0) AS sum_sape, SUM(ABS(p.actual)) AS sum_abs_actual,
-COUNT(p.scaled_error) AS n_scaled, COALESCE(SUM(ABS(p.scaled_error)), 0) AS sum_abs_scaled,
-SUM(CASE WHEN p.scale_sq > 0 THEN 1 ELSE 0 END) AS n_sq_scaled,
-COALESCE(SUM(CASE WHEN p.scale_sq > 0 THEN p.sq_error / p.scale_sq END), 0)
-    AS sum_sq_scaled,
-MIN(p.target_at) AS first_target, MAX(p.target_at) AS last_target,
-MIN(p.target_period) AS first_period"""
-_LEVEL_SELECT = """
-COUNT(*) AS n, SUM(i.hit) AS hits, SUM(i.width) AS sum_width,
-SUM(i.interval_score) AS sum_interval_score"""
-_QUANTILE_SELECT = """
-COUNT(*) AS n, SUM(q.pinball) AS sum_pinball,
-SUM(CASE WHEN p.actual <= q.value THEN 1 ELSE 0 END) AS below"""
-_GROUP = "p.series_id, p.model_id, p.horizon"
+# Each stored sum as (column, aggregate, expression): "count" counts the rows where the
+# expression is not NULL ("*": every row), "sum" adds it, "sum0" adds it with 0 for no rows.
+# `signed` renders the same list with each pair weighted +1 or -1 (a window moving by deltas).
+Aggregate = tuple[str, str, str]
+POINT_AGGREGATES: list[Aggregate] = [
+    ("n", "count", "*"),
+    ("sum_error", "sum", "p.error"),
+    ("sum_abs_error", "sum", "p.abs_error"),
+    ("sum_sq_error", "sum", "p.sq_error"),
+    ("n_ape", "count", "p.ape"),
+    ("sum_ape", "sum0", "p.ape"),
+    ("n_sape", "count", "p.sape"),
+    ("sum_sape", "sum0", "p.sape"),
+    ("sum_abs_actual", "sum", "ABS(p.actual)"),
+    ("n_scaled", "count", "p.scaled_error"),
+    ("sum_abs_scaled", "sum0", "ABS(p.scaled_error)"),
+    ("n_sq_scaled", "sum", "CASE WHEN p.scale_sq > 0 THEN 1 ELSE 0 END"),
+    ("sum_sq_scaled", "sum0", "CASE WHEN p.scale_sq > 0 THEN p.sq_error / p.scale_sq END"),
+]
+LEVEL_AGGREGATES: list[Aggregate] = [
+    ("n", "count", "*"),
+    ("hits", "sum", "i.hit"),
+    ("sum_width", "sum", "i.width"),
+    ("sum_interval_score", "sum", "i.interval_score"),
+]
+QUANTILE_AGGREGATES: list[Aggregate] = [
+    ("n", "count", "*"),
+    ("sum_pinball", "sum", "q.pinball"),
+    ("below", "sum", "CASE WHEN p.actual <= q.value THEN 1 ELSE 0 END"),
+]
+_EXTREMES_SELECT = (
+    "MIN(p.target_at) AS first_target, MAX(p.target_at) AS last_target, "
+    "MIN(p.target_period) AS first_period"
+)
+GROUP = "p.series_id, p.model_id, p.horizon"
+# Per part of `WindowSums`: the joins to the pairs, the extra key column and the aggregates.
+PARTS: dict[str, tuple[str, str | None, list[Aggregate]]] = {
+    "points": ("", None, POINT_AGGREGATES),
+    "levels": (
+        "JOIN pair_intervals i ON i.forecast_id = p.forecast_id",
+        "i.level",
+        LEVEL_AGGREGATES,
+    ),
+    "quantiles": (
+        "JOIN pair_quantiles q ON q.forecast_id = p.forecast_id",
+        "q.prob",
+        QUANTILE_AGGREGATES,
+    ),
+}
+
+
+def plain(aggregates: list[Aggregate]) -> str:
+    """`aggregates` as SELECT expressions over the chosen pairs."""
+    rendered = {
+        "count": lambda e: "COUNT(*)" if e == "*" else f"COUNT({e})",
+        "sum": lambda e: f"SUM({e})",
+        "sum0": lambda e: f"COALESCE(SUM({e}), 0)",
+    }
+    return ", ".join(f"{rendered[kind](e)} AS {name}" for name, kind, e in aggregates)
+
+
+def signed(aggregates: list[Aggregate], sign: str) -> str:
+    """`aggregates` with each pair weighted by `sign` (an SQL expression of +1 or -1)."""
+    rendered = {
+        "count": lambda e: (
+            f"SUM({sign})" if e == "*" else f"SUM(CASE WHEN {e} IS NOT NULL THEN {sign} ELSE 0 END)"
+        ),
+        "sum": lambda e: f"SUM(({sign}) * ({e}))",
+        "sum0": lambda e: f"COALESCE(SUM(({sign}) * ({e})), 0)",
+    }
+    return ", ".join(f"{rendered[kind](e)} AS {name}" for name, kind, e in aggregates)
 
 
 def window_spec(window: WindowConfig) -> str:
@@ -118,26 +172,16 @@ def _selection(
 
 def _grouped_sums(connection: Connection, chosen: str, params: dict[str, Any]) -> WindowSums:
     """The three GROUP BY queries over the pairs that `chosen` (JOIN ... WHERE ...) selects."""
-    points = read_frame(
-        connection,
-        f"SELECT {_GROUP}, {_POINT_SELECT} FROM pairs p {chosen} GROUP BY {_GROUP}",
-        params,
-    )
-    levels = read_frame(
-        connection,
-        f"SELECT {_GROUP}, i.level, {_LEVEL_SELECT} FROM pairs p "
-        f"JOIN pair_intervals i ON i.forecast_id = p.forecast_id {chosen} "
-        f"GROUP BY {_GROUP}, i.level",
-        params,
-    )
-    quantiles = read_frame(
-        connection,
-        f"SELECT {_GROUP}, q.prob, {_QUANTILE_SELECT} FROM pairs p "
-        f"JOIN pair_quantiles q ON q.forecast_id = p.forecast_id {chosen} "
-        f"GROUP BY {_GROUP}, q.prob",
-        params,
-    )
-    return _typed(WindowSums(points, levels, quantiles))
+    frames = {}
+    for part, (join, extra, aggregates) in PARTS.items():
+        keys = f"{GROUP}, {extra}" if extra else GROUP
+        selected = plain(aggregates) + ("" if extra else f", {_EXTREMES_SELECT}")
+        frames[part] = read_frame(
+            connection,
+            f"SELECT {keys}, {selected} FROM pairs p {join} {chosen} GROUP BY {keys}",
+            params,
+        )
+    return _typed(WindowSums(**frames))
 
 
 def compute_sums(
@@ -151,14 +195,6 @@ def compute_sums(
     staged = stage_keys(connection, "window_keys_" + "".join(c[0] for c in columns), keys)
     chosen, params = _selection(connection, window, now, staged, keys)
     return _grouped_sums(connection, chosen, params)
-
-
-def range_sums(connection: Connection, start: int, end: int) -> WindowSums:
-    """Sums, per key, of every pair with start < target_at <= end (a strip of targets)."""
-    if end <= start:
-        return WindowSums.empty()
-    where = "WHERE p.target_at > :start AND p.target_at <= :end"
-    return _grouped_sums(connection, where, {"start": start, "end": end})
 
 
 _INTEGERS = {"n", "n_ape", "n_sape", "n_scaled", "n_sq_scaled", "hits", "below", *EXTREMES}
