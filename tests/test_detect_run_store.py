@@ -19,11 +19,12 @@ from sqlalchemy import Engine
 
 from aftercast.cli import main
 from aftercast.config import Config
+from aftercast.detect.run import DetectStats, combine, page_checks
 from aftercast.periods import to_iso
 from aftercast.scenario import Scenario, ScenarioSpec, generate
 from aftercast.store.bulk import read_frame
 from tests.conftest import make_config
-from tests.test_detect_run_feed import cycle_on, feed_day, load_through
+from tests.test_detect_run_feed import cycle_on, cycle_time, feed_day, load_through
 
 SHIFTED = "shop-001/white"
 SECTIONS = {"window": {"days": 14}, "baseline": {"days": 14}}
@@ -133,3 +134,28 @@ def test_stalled_forecasts_and_overdue_actuals_are_flagged(
     overdue = json.loads(last.loc[last["detection"] == "actuals_overdue", "evidence"].iloc[0])
     # Day 24: targets from day 21 on are missing; overdue once 2 periods have passed.
     assert overdue["periods_late"] == 3 and overdue["latest_actual_at"].startswith("2026-06-21")
+
+
+def test_detection_by_pages_of_series_equals_one_page_of_the_fleet(
+    engine: Engine, detecting: Config, scenario: Scenario
+) -> None:
+    """The stage reads and tests a page of series at a time; paging must not change a
+    finding, its p-value or the fleet-wide adjustment (the tests are per series and model)."""
+    _run(engine, detecting, scenario, 16, 39)
+    now = cycle_time(scenario, 39)
+    with engine.connect() as connection:
+        ids = read_frame(connection, "SELECT id FROM series ORDER BY id")["id"].to_numpy()
+    whole = page_checks(engine, detecting, now, ids, DetectStats())
+    paged = [
+        part
+        for start in range(0, len(ids), 5)
+        for part in page_checks(engine, detecting, now, ids[start : start + 5], DetectStats())
+    ]
+    one, _ = combine(detecting, now, whole, None)
+    many, _ = combine(detecting, now, paged, None)
+    assert one["flagged"].sum() > 0  # the shifted series is in there
+    order = ["detection", "series_id", "model_id", "bucket", "level"]
+    pd.testing.assert_frame_equal(
+        many.sort_values(order).reset_index(drop=True),
+        one.sort_values(order).reset_index(drop=True),
+    )

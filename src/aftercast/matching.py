@@ -18,7 +18,13 @@ from sqlalchemy import Connection, Engine, text
 
 from aftercast import measures
 from aftercast.store import schema
-from aftercast.store.bulk import delete_by_ids, insert_frame, read_frame, stage_keys
+from aftercast.store.bulk import (
+    delete_by_ids,
+    id_condition,
+    insert_frame,
+    read_frame,
+    stage_keys,
+)
 from aftercast.store.db import write
 
 PAIR_COLUMNS = [c.name for c in schema.pairs.columns]
@@ -43,14 +49,24 @@ def _candidates(connection: Connection, queue: str) -> pd.DataFrame:
         "ON f.series_id = q.series_id AND f.target_period = q.period "
         "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period",
     )
-    rescaled = read_frame(
+    # Two steps, so that the join starts from the few pairs issued after a changed actual:
+    # in one statement PostgreSQL joined every forecast to every actual first.
+    later = read_frame(
         connection,
-        f"SELECT {_CANDIDATE_COLUMNS} FROM pairs p "
+        "SELECT p.forecast_id FROM pairs p "
         f"JOIN (SELECT series_id, MIN(period) AS period FROM {queue} WHERE kind = 1 "
-        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period "
-        "JOIN forecasts f ON f.id = p.forecast_id "
-        "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period",
+        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period",
     )
+    rescaled = targeted.iloc[0:0]
+    if len(later):
+        condition, params = id_condition(connection, "f.id", later["forecast_id"], "rescaled")
+        rescaled = read_frame(
+            connection,
+            f"SELECT {_CANDIDATE_COLUMNS} FROM forecasts f "
+            "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period "
+            f"WHERE {condition}",
+            params,
+        )
     both = (
         pd.concat([f for f in (targeted, rescaled) if not f.empty], ignore_index=True)
         if (len(targeted) or len(rescaled))
@@ -60,16 +76,16 @@ def _candidates(connection: Connection, queue: str) -> pd.DataFrame:
 
 
 def _bounds(connection: Connection, ids: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
-    staged = stage_keys(connection, "pair_ids", pd.DataFrame({"forecast_id": ids}))
+    condition, params = id_condition(connection, "forecast_id", ids, "pair_ids")
     intervals = read_frame(
         connection,
-        f"SELECT i.forecast_id, i.level, i.lower, i.upper FROM forecast_intervals i "
-        f"JOIN {staged} s ON s.forecast_id = i.forecast_id",
+        f"SELECT forecast_id, level, lower, upper FROM forecast_intervals WHERE {condition}",
+        params,
     )
     quantiles = read_frame(
         connection,
-        f"SELECT q.forecast_id, q.prob, q.value FROM forecast_quantiles q "
-        f"JOIN {staged} s ON s.forecast_id = q.forecast_id",
+        f"SELECT forecast_id, prob, value FROM forecast_quantiles WHERE {condition}",
+        params,
     )
     return intervals, quantiles
 

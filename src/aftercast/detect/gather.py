@@ -47,20 +47,30 @@ def detection_window(config: Config) -> WindowConfig:
 
 
 def _window_pairs(
-    connection: Connection, window: WindowConfig, now: int, model_ids: list[int]
+    connection: Connection,
+    window: WindowConfig,
+    now: int,
+    model_ids: list[int],
+    series_ids: np.ndarray | None,
 ) -> pd.DataFrame:
     models = f"({', '.join(str(int(i)) for i in model_ids) or 'NULL'})"
+    chosen = ""
+    if series_ids is not None:
+        staged_series = stage_keys(
+            connection, "detect_page", pd.DataFrame({"series_id": series_ids})
+        )
+        chosen = f"JOIN {staged_series} s ON s.series_id = p.series_id "
     if window.days is not None:
         return read_frame(
             connection,
-            f"SELECT {_PAIR_COLUMNS} FROM pairs p WHERE p.target_at > :since "
+            f"SELECT {_PAIR_COLUMNS} FROM pairs p {chosen}WHERE p.target_at > :since "
             f"AND p.target_at <= :now AND p.model_id IN {models}",
             {"since": now - int(window.days * DAY), "now": now},
         )
     last = read_frame(
         connection,
-        "SELECT series_id, model_id, MAX(target_period) AS last FROM pairs "
-        f"WHERE target_at <= :now AND model_id IN {models} GROUP BY series_id, model_id",
+        f"SELECT p.series_id, p.model_id, MAX(p.target_period) AS last FROM pairs p {chosen}"
+        f"WHERE p.target_at <= :now AND p.model_id IN {models} GROUP BY p.series_id, p.model_id",
         {"now": now},
     )
     if last.empty:
@@ -93,14 +103,19 @@ def _hits(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
     return intervals.merge(pairs[[c for c in columns if c in pairs.columns]], on="forecast_id")
 
 
-def window_data(connection: Connection, config: Config, now: int) -> WindowData:
-    """The detection window's pairs and hits, split into tested models and the benchmark."""
+def window_data(
+    connection: Connection, config: Config, now: int, series_ids: np.ndarray | None = None
+) -> WindowData:
+    """The detection window's pairs and hits, split into tested models and the benchmark;
+    of the series in `series_ids` only (a page of the fleet), or of all of them."""
     models = read_frame(connection, "SELECT id, name FROM models").set_index("id")["name"]
     models = models.astype(str)
     is_benchmark = models.str.startswith(BENCHMARK_PREFIX)
     wanted = ~is_benchmark | config.detection.include_benchmarks
     wanted |= models == model_name(config.detection.benchmark)
-    pairs = _window_pairs(connection, detection_window(config), now, list(models.index[wanted]))
+    pairs = _window_pairs(
+        connection, detection_window(config), now, list(models.index[wanted]), series_ids
+    )
     # Per model first, then mapped to the pairs: a few names, not one string test per pair.
     is_reference = models == model_name(config.detection.benchmark)
     is_tested = ~is_benchmark | (config.detection.include_benchmarks & ~is_reference)

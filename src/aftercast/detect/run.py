@@ -38,6 +38,7 @@ from aftercast.detect.gather import (
 from aftercast.detect.loss_checks import accuracy_findings, benchmark_findings, bias_findings
 from aftercast.detect.profiles import KEY, target_profiles
 from aftercast.store.db import write
+from aftercast.window_store import series_pages
 
 STATISTICAL = (
     "coverage_low",
@@ -47,6 +48,8 @@ STATISTICAL = (
     "bias",
 )
 DETECTIONS = (*STATISTICAL, "actuals_overdue", "forecasts_stalled")
+# Series tested at a time: memory follows this, not the fleet.
+PAGE_SERIES = 10_000
 # Columns some checks leave out (freshness has no p-value, only coverage has a level).
 _DEFAULTS: dict[str, object] = {
     "p_value": np.nan,
@@ -177,9 +180,16 @@ def assess(
     fresh: Freshness | None,
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """Every finding of one cycle, adjusted (pure: frames in, frames out)."""
-    parts = _checks(config, data, baselines, losses)
+    return combine(config, now, _checks(config, data, baselines, losses), fresh)
+
+
+def combine(
+    config: Config, now: int, parts: list[pd.DataFrame], fresh: Freshness | None
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The findings of the checks (`parts`, from any number of pages of series) and of the
+    freshness checks, adjusted together across the fleet."""
     if fresh is not None:
-        parts += _freshness_checks(config, fresh, now)
+        parts = parts + _freshness_checks(config, fresh, now)
     parts = [p for p in parts if len(p)]
     if not parts:
         empty = pd.DataFrame({"detection": list(DETECTIONS), "tests": 0, "flagged": 0})
@@ -200,19 +210,36 @@ def freshness_inputs(engine: Engine, config: Config, now: int) -> Freshness:
     return Freshness(recent, periods, overdue)
 
 
-def detect(engine: Engine, config: Config, now: int, cycle_id: int) -> DetectStats:
-    """The cycle stage: test, adjust and store this cycle's findings."""
+def page_checks(
+    engine: Engine, config: Config, now: int, series_ids: np.ndarray, stats: DetectStats
+) -> list[pd.DataFrame]:
+    """The checks of one page of series: its window data, baselines and findings."""
     with engine.connect() as connection:
-        data = window_data(connection, config, now)
-    stats = DetectStats()
+        data = window_data(connection, config, now, series_ids)
     wanted = data.pairs[KEY].drop_duplicates()
-    stats.baselines = refresh_baselines(engine, config, wanted, now)
+    stats.baselines += refresh_baselines(engine, config, wanted, now)
     with engine.connect() as connection:
         baselines, losses = load_baselines(connection, wanted)
+    return _checks(config, data, baselines, losses)
+
+
+def detect(
+    engine: Engine, config: Config, now: int, cycle_id: int, page_series: int = PAGE_SERIES
+) -> DetectStats:
+    """The cycle stage: test, adjust and store this cycle's findings.
+
+    The window's pairs are read and tested a page of series at a time, so memory follows the
+    page, not the fleet; only the findings are gathered for the fleet-wide adjustment.
+    """
+    stats = DetectStats()
+    parts: list[pd.DataFrame] = []
+    with engine.connect() as connection:
+        pages = [page["id"].to_numpy(np.int64) for page in series_pages(connection, page_series)]
+    for series_ids in pages:
+        parts += page_checks(engine, config, now, series_ids, stats)
+    with engine.connect() as connection:
         previous = previously_flagged(connection)
-    findings, summary = assess(
-        config, now, data, baselines, losses, freshness_inputs(engine, config, now)
-    )
+    findings, summary = combine(config, now, parts, freshness_inputs(engine, config, now))
     with write(engine) as connection:
         stats.stored = store_findings(
             connection, config, cycle_id, now, findings, summary, previous

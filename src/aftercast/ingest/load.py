@@ -17,7 +17,14 @@ from sqlalchemy import Connection, text
 
 from aftercast.ingest.validate import Checked, bound_signature
 from aftercast.store import schema
-from aftercast.store.bulk import allocate_ids, delete_by_ids, insert_frame, read_frame, stage_keys
+from aftercast.store.bulk import (
+    allocate_ids,
+    delete_by_ids,
+    id_condition,
+    insert_frame,
+    read_frame,
+    stage_keys,
+)
 
 
 @dataclass
@@ -61,18 +68,16 @@ def _existing_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFr
     )
     if found.empty:
         return found.assign(_bounds=pd.Series(dtype=np.uint64))
-    staged_ids = stage_keys(
-        connection, "found_ids", found[["id"]].rename(columns={"id": "forecast_id"})
-    )
+    condition, params = id_condition(connection, "forecast_id", found["id"], "found_ids")
     intervals = read_frame(
         connection,
-        f"SELECT i.forecast_id AS row, i.level, i.lower, i.upper FROM forecast_intervals i "
-        f"JOIN {staged_ids} s ON s.forecast_id = i.forecast_id",
+        f"SELECT forecast_id AS row, level, lower, upper FROM forecast_intervals WHERE {condition}",
+        params,
     )
     quantiles = read_frame(
         connection,
-        f"SELECT q.forecast_id AS row, q.prob, q.value FROM forecast_quantiles q "
-        f"JOIN {staged_ids} s ON s.forecast_id = q.forecast_id",
+        f"SELECT forecast_id AS row, prob, value FROM forecast_quantiles WHERE {condition}",
+        params,
     )
     found["_bounds"] = bound_signature(intervals, quantiles, pd.Index(found["id"])).to_numpy()
     return found

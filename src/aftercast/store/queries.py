@@ -7,7 +7,7 @@ from collections.abc import Iterator
 import pandas as pd
 from sqlalchemy import Connection
 
-from aftercast.store.bulk import read_frame, stage_keys
+from aftercast.store.bulk import id_condition, read_frame
 
 PAIR_SELECT = (
     "SELECT p.forecast_id, s.key AS series_id, m.name AS model, p.horizon, p.issued_at, "
@@ -26,20 +26,21 @@ def pairs_upto(connection: Connection, now: int, since: int | None = None) -> pd
 
 
 def intervals_for(connection: Connection, forecast_ids: pd.Series) -> pd.DataFrame:
-    staged = stage_keys(connection, "window_ids", pd.DataFrame({"forecast_id": forecast_ids}))
+    condition, params = id_condition(connection, "forecast_id", forecast_ids, "window_ids")
     return read_frame(
         connection,
-        "SELECT i.forecast_id, i.level, i.lower, i.upper, i.hit, i.width, i.interval_score "
-        f"FROM pair_intervals i JOIN {staged} w ON w.forecast_id = i.forecast_id",
+        "SELECT forecast_id, level, lower, upper, hit, width, interval_score "
+        f"FROM pair_intervals WHERE {condition}",
+        params,
     )
 
 
 def quantiles_for(connection: Connection, forecast_ids: pd.Series) -> pd.DataFrame:
-    staged = stage_keys(connection, "window_qids", pd.DataFrame({"forecast_id": forecast_ids}))
+    condition, params = id_condition(connection, "forecast_id", forecast_ids, "window_qids")
     return read_frame(
         connection,
-        "SELECT q.forecast_id, q.prob, q.value, q.pinball "
-        f"FROM pair_quantiles q JOIN {staged} w ON w.forecast_id = q.forecast_id",
+        f"SELECT forecast_id, prob, value, pinball FROM pair_quantiles WHERE {condition}",
+        params,
     )
 
 
