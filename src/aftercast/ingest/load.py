@@ -22,6 +22,7 @@ from aftercast.store.bulk import (
     delete_by_ids,
     id_condition,
     insert_frame,
+    is_postgres,
     read_frame,
     stage_keys,
 )
@@ -57,15 +58,44 @@ def enqueue(connection: Connection, series_id: np.ndarray, period: np.ndarray, k
     )
 
 
-def _existing_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFrame:
-    keys = rows[["series_id", "model_id", "issued_at", "target_at"]]
+_KEY = ["series_id", "model_id", "issued_at", "target_at"]
+_STORED = "f.id, f.series_id, f.model_id, f.issued_at, f.target_at, f.point"
+
+
+def _stored_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFrame:
+    """Stored forecasts with the keys of `rows`.
+
+    PostgreSQL: the forecasts of the rows' series issued in the rows' span of issue periods,
+    by index (series_id, issue_period), matched to the keys here; joined to a staging table of
+    keys, its planner hashed the whole forecasts table for every chunk. SQLite: that join.
+    """
+    keys = rows[_KEY]
+    if is_postgres(connection):
+        series, params = id_condition(connection, "f.series_id", keys["series_id"].unique(), "s")
+        found = read_frame(
+            connection,
+            f"SELECT {_STORED} FROM forecasts f WHERE {series} "
+            "AND f.issue_period >= :low AND f.issue_period <= :high",
+            {
+                **params,
+                "low": int(rows["issue_period"].min()),
+                "high": int(rows["issue_period"].max()),
+            },
+        )
+        if found.empty:
+            return found
+        return found.merge(keys.drop_duplicates(), on=_KEY)
     staged = stage_keys(connection, "forecast_keys", keys)
-    found = read_frame(
+    return read_frame(
         connection,
-        f"SELECT f.id, f.series_id, f.model_id, f.issued_at, f.target_at, f.point FROM forecasts f "
+        f"SELECT {_STORED} FROM forecasts f "
         f"JOIN {staged} k ON f.series_id = k.series_id AND f.model_id = k.model_id "
         "AND f.issued_at = k.issued_at AND f.target_at = k.target_at",
     )
+
+
+def _existing_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFrame:
+    found = _stored_forecasts(connection, rows)
     if found.empty:
         return found.assign(_bounds=pd.Series(dtype=np.uint64))
     condition, params = id_condition(connection, "forecast_id", found["id"], "found_ids")
@@ -117,8 +147,8 @@ def write_forecasts(
         connection, [schema.forecast_intervals, schema.forecast_quantiles], changed["id"].to_numpy()
     )
     if len(changed):
-        staged = stage_keys(connection, "changed", changed[["id"]])
-        connection.execute(text(f"DELETE FROM forecasts WHERE id IN (SELECT id FROM {staged})"))
+        condition, params = id_condition(connection, "id", changed["id"], "changed")
+        connection.execute(text(f"DELETE FROM forecasts WHERE {condition}"), params)
     written = pd.concat([fresh, changed])
     written["id"] = written["id"].astype("int64")
     written["ingested_at"] = now
