@@ -78,10 +78,12 @@ def main(argv: list[str] | None = None) -> int:
             file=sys.stderr,
         )
         return 2
+    # The script runs first: a child's peak memory starts from its parent's size at the fork
+    # (Linux keeps ru_maxrss across exec), which after the store path would be the store's.
+    baseline = run_baseline(args.data, args.format)
     with tempfile.TemporaryDirectory() as folder:
         url = args.store_url or f"sqlite:///{Path(folder) / 'bench.db'}"
         store = run_store(args.data, args.format, url)
-    baseline = run_baseline(args.data, args.format)
     result = {
         "bench": "ingest_and_first_cycle",
         "store": url.split(":", 1)[0],

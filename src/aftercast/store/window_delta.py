@@ -64,11 +64,16 @@ def apply_strips(
         "left_from": before - span,
         "left_to": now - span,
     }
-    sign = "CASE WHEN p.target_at > :before THEN 1 ELSE -1 END"
+    # The two strips first, each a range of ix_pairs_target, with their sign; grouping straight
+    # over pairs let SQLite walk the whole (series, model, target) index in group order.
     strips = (
-        "WHERE (p.target_at > :before AND p.target_at <= :now) "
-        "OR (p.target_at > :left_from AND p.target_at <= :left_to)"
+        "WITH p AS MATERIALIZED ("
+        "SELECT s.*, 1 AS sign FROM pairs s WHERE s.target_at > :before AND s.target_at <= :now "
+        "UNION ALL "
+        "SELECT s.*, -1 AS sign FROM pairs s "
+        "WHERE s.target_at > :left_from AND s.target_at <= :left_to) "
     )
+    sign = "p.sign"
     for part, (table, extra) in SUM_TABLES.items():
         join, extra_column, aggregates = PARTS[part]
         group = f"{GROUP}, {extra_column}" if extra_column else GROUP
@@ -81,9 +86,9 @@ def apply_strips(
         # "WHERE" before GROUP BY also keeps SQLite from reading ON CONFLICT as a join's ON.
         connection.execute(
             text(
-                f"INSERT INTO {table.name} (window_name, {columns}) "
-                f"SELECT CAST(:w AS VARCHAR(64)), {group}, {signed(aggregates, sign)}{zero_values} "
-                f"FROM pairs p {join} {strips} GROUP BY {group} "
+                f"{strips}INSERT INTO {table.name} (window_name, {columns}) "
+                f"SELECT CAST(:w AS VARCHAR(64)), {group}, {signed(aggregates, sign)}"
+                f"{zero_values} FROM p {join} WHERE true GROUP BY {group} "
                 f"ON CONFLICT (window_name, {', '.join(keys)}) DO UPDATE SET {assign}"
             ),
             params,
