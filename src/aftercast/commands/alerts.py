@@ -23,10 +23,11 @@ def _line(row: dict[str, Any]) -> str:
     adjusted = evidence.get("p_adjusted")
     sure = f", adjusted p {adjusted:.2g}" if isinstance(adjusted, float) else ""
     fix = evidence.get("suggested_fix") or ""
+    # A cleared finding has no open run of cycles, so no "since".
+    since = f" since {row['opened_at']}" if row.get("opened_at") else ""
     return (
         f"{row['state']:<8} {row['severity']:<8} {row['rule']:<24} {row['series_id']} / "
-        f"{row['model']} h{row['horizon']} since {row['opened_at']}{sure}"
-        + (f"\n         {fix}" if fix else "")
+        f"{row['model']} h{row['horizon']}{since}{sure}" + (f"\n         {fix}" if fix else "")
     )
 
 
