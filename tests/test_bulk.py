@@ -83,3 +83,12 @@ def test_binary_layout_signature_and_field_lengths() -> None:
         + (-1).to_bytes(4, "big", signed=True)
     )
     assert payload[-2:] == b"\xff\xff"
+
+
+def test_values_an_integer_column_cannot_hold_are_left_to_the_database() -> None:
+    """A fraction or an overflow is not cast silently: no binary payload, so the CSV path lets
+    PostgreSQL refuse the row as it does any bad integer (INTEGER is 32 bits in PostgreSQL)."""
+    assert copy_binary.encode(pd.DataFrame({"a": [1.5]}), ["INTEGER"]) is None
+    assert copy_binary.encode(pd.DataFrame({"a": [2**40]}), ["INTEGER"]) is None
+    assert copy_binary.encode(pd.DataFrame({"a": [2.0, None]}), ["INTEGER"]) is not None
+    assert copy_binary.encode(pd.DataFrame({"a": [2**40]}), ["BIGINT"]) is not None

@@ -47,23 +47,42 @@ def _text_values(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     return encoded, lengths
 
 
-def _fixed_values(column: pd.Series, layout: str) -> tuple[np.ndarray, np.ndarray]:
-    """The values in `layout` (NULL as zero) and each value's length, -1 for NULL."""
+def _fixed_values(column: pd.Series, layout: str) -> tuple[np.ndarray, np.ndarray] | None:
+    """The values in `layout` (NULL as zero) and each value's length, -1 for NULL; None where
+    a value would not survive the cast (a fraction or an overflow in an integer column), so
+    that the CSV path lets the database refuse it as it always did."""
     missing = column.isna().to_numpy()
     kind = np.dtype(layout)
+    if kind.kind == "i" and not _fits_integers(column, missing, kind):
+        return None
     values = column.to_numpy(dtype=kind.newbyteorder("="), na_value=0)
     lengths = np.full(len(column), kind.itemsize, dtype=np.int32)
     lengths[missing] = -1
     return values, lengths
 
 
+def _fits_integers(column: pd.Series, missing: np.ndarray, kind: np.dtype) -> bool:
+    present = pd.to_numeric(column[~missing], errors="coerce").to_numpy(dtype=np.float64)
+    if present.size == 0:
+        return True
+    limits = np.iinfo(kind.newbyteorder("="))
+    if column.dtype.kind in "iu":  # already integers: only the range can fail
+        return bool(column[~missing].min() >= limits.min and column[~missing].max() <= limits.max)
+    whole = np.isfinite(present).all() and (present == np.round(present)).all()
+    return bool(whole and present.min() >= limits.min and present.max() <= limits.max)
+
+
 def encode(frame: pd.DataFrame, type_names: list[str]) -> bytes | None:
-    """The whole COPY payload for `frame`, or None where its layout would be too large."""
+    """The whole COPY payload for `frame`, or None where it cannot stand for the values
+    exactly (too large a layout, a value an integer column cannot hold): then use CSV."""
     count = len(frame)
     values, lengths = [], []
     for name, type_name in zip(frame.columns, type_names, strict=True):
         if type_name in FIXED:
-            value, length = _fixed_values(frame[name], FIXED[type_name])
+            fixed = _fixed_values(frame[name], FIXED[type_name])
+            if fixed is None:
+                return None
+            value, length = fixed
         else:
             value, length = _text_values(frame[name])
         values.append(value)

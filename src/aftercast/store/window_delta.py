@@ -18,7 +18,7 @@ from sqlalchemy import Connection, text
 
 from aftercast.store.bulk import read_frame
 from aftercast.store.schema_windows import SUM_TABLES
-from aftercast.store.window_sums import GROUP, PARTS, signed
+from aftercast.store.window_sums import GROUP, PARTS, aggregates_select
 from aftercast.windows import EXTREMES, HORIZON_KEY, WindowSums
 
 
@@ -73,7 +73,6 @@ def apply_strips(
         "SELECT s.*, -1 AS sign FROM pairs s "
         "WHERE s.target_at > :left_from AND s.target_at <= :left_to) "
     )
-    sign = "p.sign"
     for part, (table, extra) in SUM_TABLES.items():
         join, extra_column, aggregates = PARTS[part]
         group = f"{GROUP}, {extra_column}" if extra_column else GROUP
@@ -81,13 +80,14 @@ def apply_strips(
         sums = [name for name, _kind, _expression in aggregates]
         zeros = [] if extra else list(EXTREMES)
         columns = ", ".join([*keys, *sums, *zeros])
+        sums_select = aggregates_select(aggregates, weight="p.sign")
         zero_values = "".join(f", 0 AS {c}" for c in zeros)
         assign = ", ".join(f"{c} = {table.name}.{c} + excluded.{c}" for c in sums)
         # "WHERE" before GROUP BY also keeps SQLite from reading ON CONFLICT as a join's ON.
         connection.execute(
             text(
                 f"{strips}INSERT INTO {table.name} (window_name, {columns}) "
-                f"SELECT CAST(:w AS VARCHAR(64)), {group}, {signed(aggregates, sign)}"
+                f"SELECT CAST(:w AS VARCHAR(64)), {group}, {sums_select}"
                 f"{zero_values} FROM p {join} WHERE true GROUP BY {group} "
                 f"ON CONFLICT (window_name, {', '.join(keys)}) DO UPDATE SET {assign}"
             ),

@@ -34,7 +34,8 @@ NO_FLOOR = -(2**62)
 
 # Each stored sum as (column, aggregate, expression): "count" counts the rows where the
 # expression is not NULL ("*": every row), "sum" adds it, "sum0" adds it with 0 for no rows.
-# `signed` renders the same list with each pair weighted +1 or -1 (a window moving by deltas).
+# `aggregates_select` renders them plain, or with each pair weighted +1 or -1 (a window
+# moving by deltas).
 Aggregate = tuple[str, str, str]
 POINT_AGGREGATES: list[Aggregate] = [
     ("n", "count", "*"),
@@ -83,26 +84,21 @@ PARTS: dict[str, tuple[str, str | None, list[Aggregate]]] = {
 }
 
 
-def plain(aggregates: list[Aggregate]) -> str:
-    """`aggregates` as SELECT expressions over the chosen pairs."""
-    rendered = {
-        "count": lambda e: "COUNT(*)" if e == "*" else f"COUNT({e})",
-        "sum": lambda e: f"SUM({e})",
-        "sum0": lambda e: f"COALESCE(SUM({e}), 0)",
-    }
-    return ", ".join(f"{rendered[kind](e)} AS {name}" for name, kind, e in aggregates)
+def _aggregate(kind: str, expression: str, weight: str | None) -> str:
+    """One aggregate; with `weight` (an SQL expression of +1 or -1) each pair counts that much."""
+    if kind == "count":
+        if weight is None:
+            return "COUNT(*)" if expression == "*" else f"COUNT({expression})"
+        if expression == "*":
+            return f"SUM({weight})"
+        return f"SUM(CASE WHEN {expression} IS NOT NULL THEN {weight} ELSE 0 END)"
+    total = f"SUM({expression})" if weight is None else f"SUM(({weight}) * ({expression}))"
+    return f"COALESCE({total}, 0)" if kind == "sum0" else total
 
 
-def signed(aggregates: list[Aggregate], sign: str) -> str:
-    """`aggregates` with each pair weighted by `sign` (an SQL expression of +1 or -1)."""
-    rendered = {
-        "count": lambda e: (
-            f"SUM({sign})" if e == "*" else f"SUM(CASE WHEN {e} IS NOT NULL THEN {sign} ELSE 0 END)"
-        ),
-        "sum": lambda e: f"SUM(({sign}) * ({e}))",
-        "sum0": lambda e: f"COALESCE(SUM(({sign}) * ({e})), 0)",
-    }
-    return ", ".join(f"{rendered[kind](e)} AS {name}" for name, kind, e in aggregates)
+def aggregates_select(aggregates: list[Aggregate], weight: str | None = None) -> str:
+    """`aggregates` as SELECT expressions over the chosen pairs, optionally weighted."""
+    return ", ".join(f"{_aggregate(kind, e, weight)} AS {name}" for name, kind, e in aggregates)
 
 
 def window_spec(window: WindowConfig) -> str:
@@ -175,7 +171,7 @@ def _grouped_sums(connection: Connection, chosen: str, params: dict[str, Any]) -
     frames = {}
     for part, (join, extra, aggregates) in PARTS.items():
         keys = f"{GROUP}, {extra}" if extra else GROUP
-        selected = plain(aggregates) + ("" if extra else f", {_EXTREMES_SELECT}")
+        selected = aggregates_select(aggregates) + ("" if extra else f", {_EXTREMES_SELECT}")
         frames[part] = read_frame(
             connection,
             f"SELECT {keys}, {selected} FROM pairs p {join} {chosen} GROUP BY {keys}",
