@@ -92,3 +92,47 @@ def test_values_an_integer_column_cannot_hold_are_left_to_the_database() -> None
     assert copy_binary.encode(pd.DataFrame({"a": [2**40]}), ["INTEGER"]) is None
     assert copy_binary.encode(pd.DataFrame({"a": [2.0, None]}), ["INTEGER"]) is not None
     assert copy_binary.encode(pd.DataFrame({"a": [2**40]}), ["BIGINT"]) is not None
+
+
+def test_numeric_reads_keep_integers_exact_and_nulls_as_nan(store_url: str) -> None:
+    """Rows of numbers only take numpy's one-pass conversion; what comes back must equal what
+    pandas' own per-column conversion gives (the reference), types included."""
+    engine = create_engine(store_url)
+    table = Table(
+        "bulk_numbers",
+        MetaData(),
+        Column("id", BigInteger),
+        Column("x", Float),
+        Column("n", Integer),
+    )
+    table.metadata.create_all(engine)
+    frame = pd.DataFrame(
+        {
+            "id": [1, 2**53 - 1, 5],
+            "x": [0.1 + 0.2, -np.inf, 2.5],
+            "n": pd.array([3, None, 4], dtype="Int64"),
+        }
+    )
+    with engine.begin() as connection:
+        insert_frame(connection, table, frame)
+        back = read_frame(connection, "SELECT id, x, n FROM bulk_numbers ORDER BY id")
+        raw = connection.exec_driver_sql("SELECT id, x, n FROM bulk_numbers ORDER BY id")
+        reference = pd.DataFrame.from_records(raw.fetchall(), columns=["id", "x", "n"])
+        big = read_frame(connection, "SELECT id FROM bulk_numbers WHERE id > 2 ORDER BY id")
+    engine.dispose()
+    assert back["id"].dtype == np.int64 and back["id"].tolist() == [1, 5, 2**53 - 1]
+    assert back["x"].tolist() == reference["x"].tolist()
+    assert back["n"].dtype == np.float64 and np.isnan(back["n"][2])
+    assert back["n"][:2].tolist() == [3.0, 4.0]
+    assert big["id"].tolist() == [5, 2**53 - 1]
+
+
+def test_integers_beyond_float_precision_take_the_exact_path(store_url: str) -> None:
+    engine = create_engine(store_url)
+    table = Table("bulk_huge", MetaData(), Column("id", BigInteger), Column("x", Float))
+    table.metadata.create_all(engine)
+    with engine.begin() as connection:
+        insert_frame(connection, table, pd.DataFrame({"id": [2**62 + 1], "x": [1.0]}))
+        back = read_frame(connection, "SELECT id, x FROM bulk_huge")
+    engine.dispose()
+    assert back["id"].tolist() == [2**62 + 1]

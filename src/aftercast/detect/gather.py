@@ -20,14 +20,22 @@ from aftercast.detect.profiles import KEY, with_buckets
 from aftercast.detect.settings import BENCHMARK_PREFIX, bucket_labels
 from aftercast.periods import periods_by_series
 from aftercast.store.bulk import read_frame, stage_keys
-from aftercast.store.queries import intervals_for
 from aftercast.window_store import find_window
 
 DAY = 86_400
+# What the tests read. Tested models: every pair column the checks use and the interval
+# measures of each level (width is upper - lower). The reference benchmark only feeds the
+# benchmark check, which needs its absolute errors and interval scores on the same targets.
 _PAIR_COLUMNS = (
     "p.forecast_id, p.series_id, p.model_id, p.horizon, p.issued_at, p.target_at, "
     "p.target_period, p.actual, p.point, p.error, p.abs_error, p.sq_error"
 )
+_HIT_COLUMNS = "i.forecast_id, i.level, i.lower, i.upper, i.hit, i.interval_score"
+_BENCHMARK_PAIR_COLUMNS = (
+    "p.forecast_id, p.series_id, p.model_id, p.horizon, p.issued_at, p.target_at, "
+    "p.target_period, p.abs_error"
+)
+_BENCHMARK_HIT_COLUMNS = "i.forecast_id, i.level, i.interval_score"
 
 
 @dataclass
@@ -46,13 +54,15 @@ def detection_window(config: Config) -> WindowConfig:
     return find_window(config, config.detection.window)
 
 
-def _window_pairs(
+def _window_source(
     connection: Connection,
     window: WindowConfig,
     now: int,
     model_ids: list[int],
     series_ids: np.ndarray | None,
-) -> pd.DataFrame:
+) -> tuple[str, dict[str, int], int | None]:
+    """FROM ... WHERE selecting the window's pairs as `p`, its parameters, and for a `points`
+    window the N latest periods to keep (the clause selects a superset of them)."""
     models = f"({', '.join(str(int(i)) for i in model_ids) or 'NULL'})"
     chosen = ""
     if series_ids is not None:
@@ -61,46 +71,63 @@ def _window_pairs(
         )
         chosen = f"JOIN {staged_series} s ON s.series_id = p.series_id "
     if window.days is not None:
-        return read_frame(
-            connection,
-            f"SELECT {_PAIR_COLUMNS} FROM pairs p {chosen}WHERE p.target_at > :since "
-            f"AND p.target_at <= :now AND p.model_id IN {models}",
-            {"since": now - int(window.days * DAY), "now": now},
-        )
+        since = now - int(window.days * DAY)
+        where = "WHERE p.target_at > :since AND p.target_at <= :now AND p.model_id IN"
+        return f"FROM pairs p {chosen}{where} {models}", {"since": since, "now": now}, None
+    points = int(window.points or 1)
     last = read_frame(
         connection,
         f"SELECT p.series_id, p.model_id, MAX(p.target_period) AS last FROM pairs p {chosen}"
         f"WHERE p.target_at <= :now AND p.model_id IN {models} GROUP BY p.series_id, p.model_id",
         {"now": now},
     )
-    if last.empty:
-        return read_frame(connection, f"SELECT {_PAIR_COLUMNS} FROM pairs p WHERE 1 = 0")
-    # Three times the span leaves room for gaps; the exact N latest periods are kept below.
-    last["low"] = last["last"] - 3 * int(window.points or 1)
+    # Three times the span leaves room for gaps; the exact N latest periods are kept later.
+    last["low"] = last["last"] - 3 * points
     staged = stage_keys(connection, "detect_last", last[["series_id", "model_id", "low"]])
-    pairs = read_frame(
-        connection,
-        f"SELECT {_PAIR_COLUMNS} FROM pairs p JOIN {staged} k ON k.series_id = p.series_id "
-        "AND k.model_id = p.model_id AND p.target_period > k.low WHERE p.target_at <= :now",
-        {"now": now},
+    source = (
+        f"FROM pairs p JOIN {staged} k ON k.series_id = p.series_id "
+        "AND k.model_id = p.model_id AND p.target_period > k.low WHERE p.target_at <= :now"
     )
+    return source, {"now": now}, points
+
+
+def _latest_periods(pairs: pd.DataFrame, points: int) -> pd.DataFrame:
+    """The pairs of each (series, model)'s `points` latest target periods."""
     periods = pairs[["series_id", "model_id", "target_period"]].drop_duplicates()
     rank = periods.groupby(["series_id", "model_id"])["target_period"].rank(ascending=False)
-    latest = periods.loc[rank <= int(window.points or 0)]
+    latest = periods.loc[rank <= points]
     return pairs.merge(latest, on=["series_id", "model_id", "target_period"])
 
 
-_HIT_COLUMNS = ["forecast_id", "level", "lower", "upper", "hit", "width", "interval_score"]
+def _read_window(
+    connection: Connection,
+    config: Config,
+    now: int,
+    model_ids: list[int],
+    series_ids: np.ndarray | None,
+    columns: tuple[str, str],
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """The window's pairs of `model_ids`, bucketed, and their interval rows (each with the
+    pair's key columns): one range read each, the interval rows joined in the database."""
+    pair_columns, hit_columns = columns
+    source, params, points = _window_source(
+        connection, detection_window(config), now, model_ids, series_ids
+    )
+    pairs = read_frame(connection, f"SELECT {pair_columns} {source}", params)
+    if points is not None:
+        pairs = _latest_periods(pairs, points)
+    pairs = with_buckets(pairs, bucket_labels(config.horizon_buckets))
+    intervals = read_frame(
+        connection,
+        f"SELECT {hit_columns} {source.replace('WHERE', _INTERVAL_JOIN + ' WHERE', 1)}",
+        params,
+    )
+    key = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at"]
+    key += ["actual"] if "actual" in pairs.columns else []
+    return pairs, intervals.merge(pairs[key], on="forecast_id")
 
 
-def _hits(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
-    columns = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at", "actual"]
-    if pairs.empty:
-        # Same columns as a full answer, so later merges need no special case.
-        extra = [c for c in pairs.columns if c in columns and c != "forecast_id"]
-        return pd.DataFrame(columns=[*_HIT_COLUMNS, *extra])
-    intervals = intervals_for(connection, pairs["forecast_id"])
-    return intervals.merge(pairs[[c for c in columns if c in pairs.columns]], on="forecast_id")
+_INTERVAL_JOIN = "JOIN pair_intervals i ON i.forecast_id = p.forecast_id"
 
 
 def window_data(
@@ -111,26 +138,25 @@ def window_data(
     models = read_frame(connection, "SELECT id, name FROM models").set_index("id")["name"]
     models = models.astype(str)
     is_benchmark = models.str.startswith(BENCHMARK_PREFIX)
-    wanted = ~is_benchmark | config.detection.include_benchmarks
-    wanted |= models == model_name(config.detection.benchmark)
-    pairs = _window_pairs(
-        connection, detection_window(config), now, list(models.index[wanted]), series_ids
-    )
-    # Per model first, then mapped to the pairs: a few names, not one string test per pair.
     is_reference = models == model_name(config.detection.benchmark)
     is_tested = ~is_benchmark | (config.detection.include_benchmarks & ~is_reference)
-    reference = np.isin(pairs["model_id"].to_numpy(), models.index[is_reference])
-    tested = np.isin(pairs["model_id"].to_numpy(), models.index[is_tested])
-    labels = bucket_labels(config.horizon_buckets)
-    production = with_buckets(pairs.loc[tested], labels)
-    benchmark = with_buckets(pairs.loc[reference], labels)
-    return WindowData(
-        pairs=production,
-        hits=_hits(connection, production),
-        benchmark=benchmark,
-        benchmark_hits=_hits(connection, benchmark),
-        models=models,
+    pairs, hits = _read_window(
+        connection,
+        config,
+        now,
+        [int(i) for i in models.index[is_tested]],
+        series_ids,
+        (_PAIR_COLUMNS, _HIT_COLUMNS),
     )
+    benchmark, benchmark_hits = _read_window(
+        connection,
+        config,
+        now,
+        [int(i) for i in models.index[is_reference]],
+        series_ids,
+        (_BENCHMARK_PAIR_COLUMNS, _BENCHMARK_HIT_COLUMNS),
+    )
+    return WindowData(pairs, hits, benchmark, benchmark_hits, models)
 
 
 def series_periods(connection: Connection, series_ids: np.ndarray, now: int) -> pd.DataFrame:
@@ -187,10 +213,12 @@ def overdue_targets(
         connection,
         "SELECT f.series_id, f.model_id, MIN(f.target_period) AS first_period, "
         "MIN(f.target_at) AS first_at, COUNT(DISTINCT f.target_period) AS targets "
-        f"FROM forecasts f JOIN {staged_ranges} r ON r.series_id = f.series_id "
-        "AND f.target_period > r.low AND f.target_period <= r.due "
-        "JOIN models m ON m.id = f.model_id "
-        "WHERE m.name NOT LIKE :p AND f.target_at > :since AND f.target_at <= :now "
+        # CROSS JOIN keeps the few staged ranges as SQLite's outer loop (one index range per
+        # series); left to itself it walked all of `forecasts` in group order.
+        f"FROM {staged_ranges} r CROSS JOIN forecasts f JOIN models m ON m.id = f.model_id "
+        "WHERE r.series_id = f.series_id AND f.target_period > r.low "
+        "AND f.target_period <= r.due "
+        "AND m.name NOT LIKE :p AND f.target_at > :since AND f.target_at <= :now "
         "GROUP BY f.series_id, f.model_id",
         {"p": f"{BENCHMARK_PREFIX}%", "since": since, "now": now},
     )

@@ -113,14 +113,50 @@ def read_frame(
     try:
         cursor.execute(sql, params or {})
         names = [d[0] for d in cursor.description]
-        frame = pd.DataFrame.from_records(cursor.fetchall(), columns=names, coerce_float=True)
+        rows = cursor.fetchall()
     finally:
         cursor.close()
+    frame = _numeric_frame(rows, names)
+    if frame is None:
+        frame = pd.DataFrame.from_records(rows, columns=names, coerce_float=True)
     # A column of NULLs arrives as objects; as NaN floats it behaves like the numbers it stands for.
     for column in frame.columns[frame.dtypes.map(pd.api.types.is_object_dtype)]:
         if frame[column].isna().all():
             frame[column] = frame[column].astype("float64")
     return frame
+
+
+# Integers up to 2**53 survive a trip through float64 exactly.
+_EXACT = float(2**53)
+
+
+def _numeric_frame(rows: list[Any], names: list[str]) -> pd.DataFrame | None:
+    """Rows whose first row holds only ints and floats, converted by numpy in one pass (about
+    twice as fast as pandas' per-column object conversion); None where that does not apply.
+
+    A column whose first value is an int comes back int64 unless it holds a NULL (then float
+    with NaN, as pandas would give), or a value too large for float64 to carry exactly.
+    """
+    if not rows or len(set(names)) != len(names):
+        return None
+    if not all(type(v) in (int, float) for v in rows[0]):
+        return None
+    try:
+        values = np.array(rows, dtype=np.float64)
+    except (TypeError, ValueError):
+        return None
+    if values.ndim != 2 or values.shape[1] != len(names):
+        return None
+    columns: dict[str, np.ndarray] = {}
+    for index, (name, first) in enumerate(zip(names, rows[0], strict=True)):
+        column = values[:, index]
+        if type(first) is int and not np.isnan(column).any():
+            if np.abs(column).max() >= _EXACT or not np.array_equal(column, np.trunc(column)):
+                return None
+            columns[name] = column.astype(np.int64)
+        else:
+            columns[name] = column.copy()
+    return pd.DataFrame(columns, copy=False)
 
 
 def stage_keys(connection: Connection, name: str, frame: pd.DataFrame) -> str:
