@@ -36,6 +36,7 @@ _BENCHMARK_PAIR_COLUMNS = (
     "p.target_period, p.abs_error"
 )
 _BENCHMARK_HIT_COLUMNS = "i.forecast_id, i.level, i.interval_score"
+_INTERVAL_JOIN = "JOIN pair_intervals i ON i.forecast_id = p.forecast_id"
 
 
 @dataclass
@@ -127,9 +128,6 @@ def _read_window(
     return pairs, intervals.merge(pairs[key], on="forecast_id")
 
 
-_INTERVAL_JOIN = "JOIN pair_intervals i ON i.forecast_id = p.forecast_id"
-
-
 def window_data(
     connection: Connection, config: Config, now: int, series_ids: np.ndarray | None = None
 ) -> WindowData:
@@ -140,21 +138,15 @@ def window_data(
     is_benchmark = models.str.startswith(BENCHMARK_PREFIX)
     is_reference = models == model_name(config.detection.benchmark)
     is_tested = ~is_benchmark | (config.detection.include_benchmarks & ~is_reference)
-    pairs, hits = _read_window(
-        connection,
-        config,
-        now,
-        [int(i) for i in models.index[is_tested]],
-        series_ids,
-        (_PAIR_COLUMNS, _HIT_COLUMNS),
+    reads = (
+        (is_tested, (_PAIR_COLUMNS, _HIT_COLUMNS)),
+        (is_reference, (_BENCHMARK_PAIR_COLUMNS, _BENCHMARK_HIT_COLUMNS)),
     )
-    benchmark, benchmark_hits = _read_window(
-        connection,
-        config,
-        now,
-        [int(i) for i in models.index[is_reference]],
-        series_ids,
-        (_BENCHMARK_PAIR_COLUMNS, _BENCHMARK_HIT_COLUMNS),
+    (pairs, hits), (benchmark, benchmark_hits) = (
+        _read_window(
+            connection, config, now, [int(i) for i in models.index[which]], series_ids, columns
+        )
+        for which, columns in reads
     )
     return WindowData(pairs, hits, benchmark, benchmark_hits, models)
 

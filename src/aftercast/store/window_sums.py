@@ -218,10 +218,9 @@ def delete_stored(connection: Connection, window_name: str, keys: pd.DataFrame |
     for table, _extra in SUM_TABLES.values():
         sql = f"DELETE FROM {table.name} WHERE window_name = :w"
         if staged is not None:
-            sql += (
-                f" AND EXISTS (SELECT 1 FROM {staged} k WHERE k.series_id = {table.name}.series_id"
-                f" AND k.model_id = {table.name}.model_id)"
-            )
+            # A row-value IN probes the key index per staged key; a correlated EXISTS made
+            # SQLite walk every row of the window.
+            sql += f" AND (series_id, model_id) IN (SELECT series_id, model_id FROM {staged})"
         connection.execute(text(sql), {"w": window_name})
 
 
