@@ -117,8 +117,8 @@ def record_activity(connection: Connection, fresh: pd.DataFrame) -> None:
     )
     if len(stored):
         connection.exec_driver_sql(
-            f"DELETE FROM forecast_activity WHERE EXISTS (SELECT 1 FROM {staged} k WHERE "
-            "k.series_id = forecast_activity.series_id AND k.model_id = forecast_activity.model_id)"
+            "DELETE FROM forecast_activity WHERE (series_id, model_id) IN "
+            f"(SELECT series_id, model_id FROM {staged})"
         )
     insert_frame(connection, forecast_activity, merged.astype("int64"))
 
