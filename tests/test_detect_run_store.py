@@ -159,3 +159,38 @@ def test_detection_by_pages_of_series_equals_one_page_of_the_fleet(
         many.sort_values(order).reset_index(drop=True),
         one.sort_values(order).reset_index(drop=True),
     )
+
+
+def test_points_window_reads_the_latest_periods_and_their_intervals(
+    store_url: str, scenario: Scenario
+) -> None:
+    """A `points` detection window: each (series, model) holds exactly its N latest target
+    periods at or before the clock, and every interval row read belongs to one of those pairs
+    (checked against a plain pandas selection of the stored pairs)."""
+    from aftercast.detect.gather import window_data
+    from aftercast.store.db import make_engine, migrate
+
+    config = make_config(store_url, window={"points": 5}, baseline={"days": 14})
+    engine = make_engine(store_url)
+    migrate(engine)
+    load_through(engine, config, scenario, 30)
+    cycle_on(engine, config, scenario, 30)
+    now = cycle_time(scenario, 30)
+    with engine.connect() as connection:
+        data = window_data(connection, config, now)
+        stored = read_frame(
+            connection,
+            "SELECT p.forecast_id, p.series_id, p.model_id, p.target_period, p.target_at "
+            "FROM pairs p JOIN models m ON m.id = p.model_id "
+            "WHERE m.name NOT LIKE 'benchmark:%'",
+        )
+        levels = read_frame(connection, "SELECT COUNT(DISTINCT level) AS n FROM pair_intervals")
+    engine.dispose()
+    stored = stored.loc[stored["target_at"] <= now]
+    periods = stored[["series_id", "model_id", "target_period"]].drop_duplicates()
+    latest = periods.groupby(["series_id", "model_id"])["target_period"].nlargest(5)
+    expected = set(zip(latest.index.get_level_values(0), latest.to_numpy(), strict=True))
+    got = set(zip(data.pairs["series_id"], data.pairs["target_period"], strict=True))
+    assert got == expected and len(expected) == 24 * 5
+    assert set(data.hits["forecast_id"]) == set(data.pairs["forecast_id"])
+    assert len(data.hits) == len(data.pairs) * int(levels["n"][0]) > 0

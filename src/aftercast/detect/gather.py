@@ -36,7 +36,6 @@ _BENCHMARK_PAIR_COLUMNS = (
     "p.target_period, p.abs_error"
 )
 _BENCHMARK_HIT_COLUMNS = "i.forecast_id, i.level, i.interval_score"
-_INTERVAL_JOIN = "JOIN pair_intervals i ON i.forecast_id = p.forecast_id"
 
 
 @dataclass
@@ -55,15 +54,28 @@ def detection_window(config: Config) -> WindowConfig:
     return find_window(config, config.detection.window)
 
 
+@dataclass
+class _Source:
+    """The window's pairs as `p`: joins after `FROM pairs p`, the WHERE condition, its
+    parameters, and for a `points` window the N latest periods to keep (the clause selects a
+    superset of them)."""
+
+    joins: str
+    where: str
+    params: dict[str, int]
+    points: int | None = None
+
+    def select(self, columns: str, extra_join: str = "") -> str:
+        return f"SELECT {columns} FROM pairs p {self.joins}{extra_join} WHERE {self.where}"
+
+
 def _window_source(
     connection: Connection,
     window: WindowConfig,
     now: int,
     model_ids: list[int],
     series_ids: np.ndarray | None,
-) -> tuple[str, dict[str, int], int | None]:
-    """FROM ... WHERE selecting the window's pairs as `p`, its parameters, and for a `points`
-    window the N latest periods to keep (the clause selects a superset of them)."""
+) -> _Source:
     models = f"({', '.join(str(int(i)) for i in model_ids) or 'NULL'})"
     chosen = ""
     if series_ids is not None:
@@ -73,8 +85,8 @@ def _window_source(
         chosen = f"JOIN {staged_series} s ON s.series_id = p.series_id "
     if window.days is not None:
         since = now - int(window.days * DAY)
-        where = "WHERE p.target_at > :since AND p.target_at <= :now AND p.model_id IN"
-        return f"FROM pairs p {chosen}{where} {models}", {"since": since, "now": now}, None
+        where = f"p.target_at > :since AND p.target_at <= :now AND p.model_id IN {models}"
+        return _Source(chosen, where, {"since": since, "now": now})
     points = int(window.points or 1)
     last = read_frame(
         connection,
@@ -85,11 +97,11 @@ def _window_source(
     # Three times the span leaves room for gaps; the exact N latest periods are kept later.
     last["low"] = last["last"] - 3 * points
     staged = stage_keys(connection, "detect_last", last[["series_id", "model_id", "low"]])
-    source = (
-        f"FROM pairs p JOIN {staged} k ON k.series_id = p.series_id "
-        "AND k.model_id = p.model_id AND p.target_period > k.low WHERE p.target_at <= :now"
+    joins = (
+        f"JOIN {staged} k ON k.series_id = p.series_id "
+        "AND k.model_id = p.model_id AND p.target_period > k.low "
     )
-    return source, {"now": now}, points
+    return _Source(joins, "p.target_at <= :now", {"now": now}, points)
 
 
 def _latest_periods(pairs: pd.DataFrame, points: int) -> pd.DataFrame:
@@ -111,17 +123,15 @@ def _read_window(
     """The window's pairs of `model_ids`, bucketed, and their interval rows (each with the
     pair's key columns): one range read each, the interval rows joined in the database."""
     pair_columns, hit_columns = columns
-    source, params, points = _window_source(
-        connection, detection_window(config), now, model_ids, series_ids
-    )
-    pairs = read_frame(connection, f"SELECT {pair_columns} {source}", params)
-    if points is not None:
-        pairs = _latest_periods(pairs, points)
+    source = _window_source(connection, detection_window(config), now, model_ids, series_ids)
+    pairs = read_frame(connection, source.select(pair_columns), source.params)
+    if source.points is not None:
+        pairs = _latest_periods(pairs, source.points)
     pairs = with_buckets(pairs, bucket_labels(config.horizon_buckets))
     intervals = read_frame(
         connection,
-        f"SELECT {hit_columns} {source.replace('WHERE', _INTERVAL_JOIN + ' WHERE', 1)}",
-        params,
+        source.select(hit_columns, "JOIN pair_intervals i ON i.forecast_id = p.forecast_id"),
+        source.params,
     )
     key = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at"]
     key += ["actual"] if "actual" in pairs.columns else []
