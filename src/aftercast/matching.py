@@ -11,6 +11,7 @@ are replaced and its queue rows removed together, so a crash repeats a batch, ne
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -22,6 +23,7 @@ from aftercast.store.bulk import (
     delete_by_ids,
     id_condition,
     insert_frame,
+    is_postgres,
     read_frame,
     stage_keys,
 )
@@ -41,38 +43,64 @@ class MatchStats:
     touched: pd.DataFrame | None = None  # distinct (series_id, model_id) with new or changed pairs
 
 
-def _candidates(connection: Connection, queue: str) -> pd.DataFrame:
-    """The forecasts to score, with their actual; `paired` is 1 where a pair is stored already.
+def _batch_condition(
+    connection: Connection, queue: pd.DataFrame
+) -> tuple[str, str, dict[str, Any]]:
+    """Conditions that keep forecasts `f`, actuals `a` and pairs `p` to the batch's series and
+    span of periods, with their parameters; none on SQLite.
 
-    Most of a day's candidates are new, so knowing which ones were paired before keeps the
-    replacement's deletes to those few instead of probing three tables for every candidate.
+    PostgreSQL: joined to the staged queue alone, its planner hashed all of `forecasts` and
+    `actuals` for every batch, so each batch cost what the whole store holds (the daily cycle
+    at 100,000 series spent most of its matching there). The batch's series as an array and
+    the span of its periods let it walk `ix_forecasts_target` and the actuals' key instead.
+    SQLite already starts from the staged keys and probes the indexes.
     """
+    if not is_postgres(connection):
+        return "", "", {}
+    batch_series = queue["series_id"].unique()
+    series, params = id_condition(connection, "f.series_id", batch_series, "bs")
+    paired_series, _ = id_condition(connection, "p.series_id", batch_series, "bs")
+    span = "f.target_period >= :low AND f.target_period <= :high"
+    targets = (
+        f"WHERE {series} AND {span} AND a.series_id = f.series_id "
+        "AND a.period >= :low AND a.period <= :high "
+    )
+    later = f"WHERE {paired_series} "
+    periods = queue["period"]
+    return targets, later, {**params, "low": int(periods.min()), "high": int(periods.max())}
+
+
+def _candidates(connection: Connection, staged: str, queue: pd.DataFrame) -> pd.DataFrame:
+    """The forecasts to score, with their actual: those targeting a queued (series, period),
+    and those issued after a changed actual, whose scale it feeds."""
+    targets, later_in_batch, params = _batch_condition(connection, queue)
     targeted = read_frame(
         connection,
-        f"SELECT {_CANDIDATE_COLUMNS}, "
-        "CASE WHEN p.forecast_id IS NULL THEN 0 ELSE 1 END AS paired FROM forecasts f "
-        f"JOIN (SELECT DISTINCT series_id, period FROM {queue}) q "
+        f"SELECT {_CANDIDATE_COLUMNS} FROM forecasts f "
+        f"JOIN (SELECT DISTINCT series_id, period FROM {staged}) q "
         "ON f.series_id = q.series_id AND f.target_period = q.period "
-        "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period "
-        "LEFT JOIN pairs p ON p.forecast_id = f.id",
+        f"JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period {targets}",
+        params,
     )
     # Two steps, so that the join starts from the few pairs issued after a changed actual:
     # in one statement PostgreSQL joined every forecast to every actual first.
     later = read_frame(
         connection,
         "SELECT p.forecast_id FROM pairs p "
-        f"JOIN (SELECT series_id, MIN(period) AS period FROM {queue} WHERE kind = 1 "
-        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period",
+        f"JOIN (SELECT series_id, MIN(period) AS period FROM {staged} WHERE kind = 1 "
+        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period "
+        f"{later_in_batch}",
+        params,
     )
     rescaled = targeted.iloc[0:0]
     if len(later):
-        condition, params = id_condition(connection, "f.id", later["forecast_id"], "rescaled")
+        condition, id_params = id_condition(connection, "f.id", later["forecast_id"], "rescaled")
         rescaled = read_frame(
             connection,
-            f"SELECT {_CANDIDATE_COLUMNS}, 1 AS paired FROM forecasts f "
+            f"SELECT {_CANDIDATE_COLUMNS} FROM forecasts f "
             "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period "
             f"WHERE {condition}",
-            params,
+            id_params,
         )
     both = (
         pd.concat([f for f in (targeted, rescaled) if not f.empty], ignore_index=True)
@@ -82,7 +110,14 @@ def _candidates(connection: Connection, queue: str) -> pd.DataFrame:
     return both.drop_duplicates("forecast_id")
 
 
-def _bounds(connection: Connection, ids: np.ndarray) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _stored(
+    connection: Connection, ids: np.ndarray
+) -> tuple[pd.DataFrame, pd.DataFrame, np.ndarray]:
+    """The candidates' interval bounds and quantiles, and which of them have a stored pair.
+
+    Most of a day's candidates are new: knowing the few paired before keeps the replacement's
+    deletes to those instead of probing three tables for every candidate.
+    """
     condition, params = id_condition(connection, "forecast_id", ids, "pair_ids")
     intervals = read_frame(
         connection,
@@ -94,7 +129,8 @@ def _bounds(connection: Connection, ids: np.ndarray) -> tuple[pd.DataFrame, pd.D
         f"SELECT forecast_id, prob, value FROM forecast_quantiles WHERE {condition}",
         params,
     )
-    return intervals, quantiles
+    paired = read_frame(connection, f"SELECT forecast_id FROM pairs WHERE {condition}", params)
+    return intervals, quantiles, paired["forecast_id"].to_numpy(np.int64)
 
 
 def _scales(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:
@@ -149,13 +185,11 @@ def score_quantiles(quantiles: pd.DataFrame, actual: pd.Series) -> pd.DataFrame:
 
 def _match_batch(connection: Connection, queue: pd.DataFrame, now: int) -> tuple[pd.DataFrame, int]:
     staged = stage_keys(connection, "match_batch", queue)
-    candidates = _candidates(connection, staged)
+    candidates = _candidates(connection, staged, queue)
     if not candidates.empty:
-        ids = candidates["forecast_id"].to_numpy()
-        intervals, quantiles = _bounds(connection, ids)
+        intervals, quantiles, replaced = _stored(connection, candidates["forecast_id"].to_numpy())
         scored = score_pairs(candidates, _scales(connection, candidates), now)
         actual = pd.Series(scored["actual"].to_numpy(), index=scored["forecast_id"].to_numpy())
-        replaced = candidates.loc[candidates["paired"] == 1, "forecast_id"].to_numpy()
         delete_by_ids(
             connection, [schema.pairs, schema.pair_intervals, schema.pair_quantiles], replaced
         )

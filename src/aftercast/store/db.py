@@ -17,7 +17,7 @@ from alembic import command
 from alembic.config import Config as AlembicConfig
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
-from sqlalchemy import Connection, Engine, create_engine, event
+from sqlalchemy import Connection, Engine, create_engine, event, make_url
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError, OperationalError
 
 from aftercast.errors import AftercastError, ConfigError, SchemaOutdatedError
@@ -32,10 +32,20 @@ def make_engine(url: str, echo: bool = False) -> Engine:
             engine = create_engine(url, echo=echo, connect_args={"timeout": 60})
             _tune_sqlite(engine)
         else:
-            engine = create_engine(url, echo=echo, pool_pre_ping=True)
+            engine = create_engine(
+                url, echo=echo, pool_pre_ping=True, connect_args=_server_args(url)
+            )
     except (ArgumentError, NoSuchModuleError) as exc:
         raise ConfigError(f"config key store.url: {exc}") from None
     return engine
+
+
+def _server_args(url: str) -> dict[str, Any]:
+    """psycopg 3 prepares a statement run five times on a connection, and PostgreSQL may then
+    plan it once for any parameters. The cycle's statements take arrays of ids whose length
+    decides the plan (index probes for a few, a scan for many), so each is planned for its own
+    values: the planning is microseconds next to statements that read thousands of rows."""
+    return {"prepare_threshold": None} if make_url(url).get_driver_name() == "psycopg" else {}
 
 
 def _tune_sqlite(engine: Engine) -> None:
