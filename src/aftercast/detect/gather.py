@@ -9,6 +9,7 @@ periods per (series, model) at or before now.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -19,7 +20,7 @@ from aftercast.config import Config, WindowConfig
 from aftercast.detect.profiles import KEY, with_buckets
 from aftercast.detect.settings import BENCHMARK_PREFIX, bucket_labels
 from aftercast.periods import periods_by_series
-from aftercast.store.bulk import read_frame, stage_keys
+from aftercast.store.bulk import id_condition, is_postgres, read_frame, stage_keys
 from aftercast.window_store import find_window
 
 DAY = 86_400
@@ -58,15 +59,32 @@ def detection_window(config: Config) -> WindowConfig:
 class _Source:
     """The window's pairs as `p`: joins after `FROM pairs p`, the WHERE condition, its
     parameters, and for a `points` window the N latest periods to keep (the clause selects a
-    superset of them)."""
+    superset of them). `probe` joins child rows by a lookup per pair (PostgreSQL)."""
 
     joins: str
     where: str
-    params: dict[str, int]
+    params: dict[str, Any]
     points: int | None = None
+    probe: bool = False
 
-    def select(self, columns: str, extra_join: str = "") -> str:
-        return f"SELECT {columns} FROM pairs p {self.joins}{extra_join} WHERE {self.where}"
+    def select(self, columns: str) -> str:
+        return f"SELECT {columns} FROM pairs p {self.joins}WHERE {self.where}"
+
+    def select_intervals(self, columns: str) -> str:
+        """The interval rows of the window's pairs, as `i`, joined in the database.
+
+        PostgreSQL is made to look each pair's rows up by key (a lateral subquery that the
+        planner may not flatten): left to choose, it hashed every interval row in the store
+        once per page of series, so detection grew with the square of the fleet.
+        """
+        if self.probe:
+            rows = (
+                "CROSS JOIN LATERAL (SELECT * FROM pair_intervals i0 "
+                "WHERE i0.forecast_id = p.forecast_id OFFSET 0) i "
+            )
+        else:
+            rows = "JOIN pair_intervals i ON i.forecast_id = p.forecast_id "
+        return f"SELECT {columns} FROM pairs p {self.joins}{rows}WHERE {self.where}"
 
 
 def _window_source(
@@ -77,22 +95,30 @@ def _window_source(
     series_ids: np.ndarray | None,
 ) -> _Source:
     models = f"({', '.join(str(int(i)) for i in model_ids) or 'NULL'})"
-    chosen = ""
-    if series_ids is not None:
+    probe = is_postgres(connection)
+    chosen, page = "", ""
+    params: dict[str, Any] = {}
+    if series_ids is not None and probe:
+        # The page as an array: the planner walks (series, model, target) per series instead
+        # of the window's whole range of targets.
+        condition, params = id_condition(connection, "p.series_id", series_ids, "page")
+        page = f" AND {condition}"
+    elif series_ids is not None:
         staged_series = stage_keys(
             connection, "detect_page", pd.DataFrame({"series_id": series_ids})
         )
         chosen = f"JOIN {staged_series} s ON s.series_id = p.series_id "
     if window.days is not None:
         since = now - int(window.days * DAY)
-        where = f"p.target_at > :since AND p.target_at <= :now AND p.model_id IN {models}"
-        return _Source(chosen, where, {"since": since, "now": now})
+        where = f"p.target_at > :since AND p.target_at <= :now AND p.model_id IN {models}{page}"
+        return _Source(chosen, where, {"since": since, "now": now, **params}, probe=probe)
     points = int(window.points or 1)
     last = read_frame(
         connection,
         f"SELECT p.series_id, p.model_id, MAX(p.target_period) AS last FROM pairs p {chosen}"
-        f"WHERE p.target_at <= :now AND p.model_id IN {models} GROUP BY p.series_id, p.model_id",
-        {"now": now},
+        f"WHERE p.target_at <= :now AND p.model_id IN {models}{page} "
+        "GROUP BY p.series_id, p.model_id",
+        {"now": now, **params},
     )
     # Three times the span leaves room for gaps; the exact N latest periods are kept later.
     last["low"] = last["last"] - 3 * points
@@ -101,7 +127,7 @@ def _window_source(
         f"JOIN {staged} k ON k.series_id = p.series_id "
         "AND k.model_id = p.model_id AND p.target_period > k.low "
     )
-    return _Source(joins, "p.target_at <= :now", {"now": now}, points)
+    return _Source(joins, f"p.target_at <= :now{page}", {"now": now, **params}, points, probe)
 
 
 def _latest_periods(pairs: pd.DataFrame, points: int) -> pd.DataFrame:
@@ -128,11 +154,7 @@ def _read_window(
     if source.points is not None:
         pairs = _latest_periods(pairs, source.points)
     pairs = with_buckets(pairs, bucket_labels(config.horizon_buckets))
-    intervals = read_frame(
-        connection,
-        source.select(hit_columns, "JOIN pair_intervals i ON i.forecast_id = p.forecast_id"),
-        source.params,
-    )
+    intervals = read_frame(connection, source.select_intervals(hit_columns), source.params)
     key = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at"]
     key += ["actual"] if "actual" in pairs.columns else []
     return pairs, intervals.merge(pairs[key], on="forecast_id")
