@@ -10,8 +10,7 @@ are replaced and its queue rows removed together, so a crash repeats a batch, ne
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from typing import Any
+from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
@@ -23,7 +22,6 @@ from aftercast.store.bulk import (
     delete_by_ids,
     id_condition,
     insert_frame,
-    is_postgres,
     read_frame,
     stage_keys,
 )
@@ -43,44 +41,7 @@ class MatchStats:
     touched: pd.DataFrame | None = None  # distinct (series_id, model_id) with new or changed pairs
 
 
-@dataclass
-class _Narrowing:
-    """WHERE clauses that keep a batch's statements to its series and span of periods: for
-    forecasts `f` joined to actuals `a`, for pairs `p`, and for the match queue; with their
-    parameters. Empty on SQLite, whose planner already starts from the staged keys.
-
-    PostgreSQL: joined to the staged queue alone, its planner hashed all of `forecasts`,
-    `actuals` and `match_queue` for every batch, so each batch cost what the whole store holds
-    (most of the matching of the daily cycle at 100,000 series). The batch's series as an
-    array and the span of its periods let it walk `ix_forecasts_target` and the keys instead.
-    """
-
-    targets: str = ""
-    later: str = ""
-    queue: str = ""
-    params: dict[str, Any] = field(default_factory=dict)
-
-    @classmethod
-    def of(cls, connection: Connection, queue: pd.DataFrame) -> _Narrowing:
-        if not is_postgres(connection):
-            return cls()
-        series = queue["series_id"].unique()
-        forecasts, params = id_condition(connection, "f.series_id", series, "bs")
-        paired, _ = id_condition(connection, "p.series_id", series, "bs")
-        queued, _ = id_condition(connection, "series_id", series, "bs")
-        periods = queue["period"]
-        return cls(
-            targets=(
-                f"WHERE {forecasts} AND f.target_period >= :low AND f.target_period <= :high "
-                "AND a.series_id = f.series_id AND a.period >= :low AND a.period <= :high "
-            ),
-            later=f"WHERE {paired} ",
-            queue=f" AND {queued}",
-            params={**params, "low": int(periods.min()), "high": int(periods.max())},
-        )
-
-
-def _candidates(connection: Connection, staged: str, narrowing: _Narrowing) -> pd.DataFrame:
+def _candidates(connection: Connection, staged: str) -> pd.DataFrame:
     """The forecasts to score, with their actual: those targeting a queued (series, period),
     and those issued after a changed actual, whose scale it feeds."""
     targeted = read_frame(
@@ -88,9 +49,7 @@ def _candidates(connection: Connection, staged: str, narrowing: _Narrowing) -> p
         f"SELECT {_CANDIDATE_COLUMNS} FROM forecasts f "
         f"JOIN (SELECT DISTINCT series_id, period FROM {staged}) q "
         "ON f.series_id = q.series_id AND f.target_period = q.period "
-        "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period "
-        f"{narrowing.targets}",
-        narrowing.params,
+        "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period",
     )
     # Two steps, so that the join starts from the few pairs issued after a changed actual:
     # in one statement PostgreSQL joined every forecast to every actual first.
@@ -98,9 +57,7 @@ def _candidates(connection: Connection, staged: str, narrowing: _Narrowing) -> p
         connection,
         "SELECT p.forecast_id FROM pairs p "
         f"JOIN (SELECT series_id, MIN(period) AS period FROM {staged} WHERE kind = 1 "
-        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period "
-        f"{narrowing.later}",
-        narrowing.params,
+        "GROUP BY series_id) q ON p.series_id = q.series_id AND p.issue_period > q.period",
     )
     rescaled = targeted.iloc[0:0]
     if len(later):
@@ -195,8 +152,7 @@ def score_quantiles(quantiles: pd.DataFrame, actual: pd.Series) -> pd.DataFrame:
 
 def _match_batch(connection: Connection, queue: pd.DataFrame, now: int) -> tuple[pd.DataFrame, int]:
     staged = stage_keys(connection, "match_batch", queue)
-    narrowing = _Narrowing.of(connection, queue)
-    candidates = _candidates(connection, staged, narrowing)
+    candidates = _candidates(connection, staged)
     if not candidates.empty:
         intervals, quantiles, replaced = _stored(connection, candidates["forecast_id"].to_numpy())
         scored = score_pairs(candidates, _scales(connection, candidates), now)
@@ -211,9 +167,8 @@ def _match_batch(connection: Connection, queue: pd.DataFrame, now: int) -> tuple
         text(
             # Row-value IN lets both engines hash the staged keys instead of a nested scan.
             "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
-            f"(SELECT series_id, period, kind FROM {staged}){narrowing.queue}"
-        ),
-        narrowing.params,
+            f"(SELECT series_id, period, kind FROM {staged})"
+        )
     )
     return candidates[["series_id", "model_id"]].drop_duplicates(), len(candidates)
 
