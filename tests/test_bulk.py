@@ -172,3 +172,17 @@ def test_allocated_ids_are_fresh_and_distinct_across_transactions(store_url: str
     # the second block may reuse the first's ids (max(id) + 1 under the write lock).
     if store_url.startswith("postgresql"):
         assert not np.isin(second, first).any()
+
+
+def test_postgres_sessions_keep_the_urls_own_options(pg_url: str) -> None:
+    """JIT is turned off per session without dropping session options the URL itself gives."""
+    from sqlalchemy import text
+
+    from aftercast.store.db import make_engine
+
+    engine = make_engine(pg_url + "?options=-c%20statement_timeout%3D12345")
+    with engine.connect() as connection:
+        jit = connection.execute(text("SHOW jit")).scalar()
+        timeout = connection.execute(text("SHOW statement_timeout")).scalar()
+    engine.dispose()
+    assert (jit, timeout) == ("off", "12345ms")

@@ -61,13 +61,13 @@ def _candidates(connection: Connection, staged: str) -> pd.DataFrame:
     )
     rescaled = targeted.iloc[0:0]
     if len(later):
-        condition, id_params = id_condition(connection, "f.id", later["forecast_id"], "rescaled")
+        condition, params = id_condition(connection, "f.id", later["forecast_id"], "rescaled")
         rescaled = read_frame(
             connection,
             f"SELECT {_CANDIDATE_COLUMNS} FROM forecasts f "
             "JOIN actuals a ON a.series_id = f.series_id AND a.period = f.target_period "
             f"WHERE {condition}",
-            id_params,
+            params,
         )
     both = (
         pd.concat([f for f in (targeted, rescaled) if not f.empty], ignore_index=True)

@@ -202,12 +202,12 @@ def id_condition(
     """
     values = np.asarray(ids, dtype=np.int64)
     if is_postgres(connection):
-        return f"{column} = ANY(CAST(:{name} AS BIGINT[]))", {name: array_literal(values)}
+        return f"{column} = ANY(CAST(:{name} AS BIGINT[]))", {name: _array_literal(values)}
     staged = stage_keys(connection, name, pd.DataFrame({"id": values}))
     return f"{column} IN (SELECT id FROM {staged})", {}
 
 
-def array_literal(values: np.ndarray) -> str:
+def _array_literal(values: np.ndarray) -> str:
     """A PostgreSQL array literal of integers, e.g. '{1,2,3}'."""
     return "{" + ",".join(map(str, values.tolist())) + "}"
 

@@ -50,9 +50,12 @@ def _server_args(url: str) -> dict[str, Any]:
     is off for the session: the cycle's statements are large but simple, and compiling each
     anew cost about half a second apiece (their expressions are evaluated once per row).
     """
-    if make_url(url).get_driver_name() != "psycopg":
+    parsed = make_url(url)
+    if parsed.get_driver_name() != "psycopg":
         return {}
-    return {"prepare_threshold": None, "options": "-c jit=off"}
+    given = parsed.query.get("options", "")  # the URL's own session options are kept
+    given = given if isinstance(given, str) else " ".join(given)
+    return {"prepare_threshold": None, "options": f"{given} -c jit=off".strip()}
 
 
 def _tune_sqlite(engine: Engine) -> None:
