@@ -177,6 +177,11 @@ def table_snapshot(engine: Engine, table: str, names: dict[str, pd.Series]) -> p
     for column in ("payload", "evidence"):
         if column in frame.columns:
             frame[column] = frame[column].map(_canonical_json)
+    for column in ("bounds",):  # packed floats: compared as their bytes, shown as hex
+        if column in frame.columns:
+            frame[column] = frame[column].map(
+                lambda b: bytes(b).hex() if isinstance(b, bytes | memoryview) else None
+            )
     order = sorted(frame.columns)
     frame = frame[order]
     # Sort on a rounded copy, so float noise in the last digits cannot reorder rows.

@@ -14,6 +14,7 @@ from sqlalchemy import (
     Column,
     Float,
     Integer,
+    LargeBinary,
     MetaData,
     SmallInteger,
     String,
@@ -67,6 +68,23 @@ def test_rows_come_back_as_written_with_nulls_text_and_infinities(store_url: str
     # SQLite reads back an empty text as '' as well; NULL stays NULL.
     assert back["note"][0] == "" and back["note"][1] == "a longer note, with a comma"
     assert back["note"][2] is None or pd.isna(back["note"][2])
+
+
+def test_blobs_come_back_byte_for_byte_with_trailing_zeros_and_nulls(store_url: str) -> None:
+    # numpy's fixed-width byte strings drop trailing zero bytes; a packed 0.0 is eight of them.
+    blobs = [np.array([1.5, 0.0]).tobytes(), None, b"", bytes(range(256)), b"\x00"]
+    table = Table("blob_check", MetaData(), Column("n", Integer), Column("blob", LargeBinary))
+    engine = create_engine(store_url)
+    table.metadata.create_all(engine)
+    with engine.begin() as connection:
+        insert_frame(connection, table, pd.DataFrame({"n": range(5), "blob": blobs}))
+        back = read_frame(connection, "SELECT n, blob FROM blob_check ORDER BY n")
+    engine.dispose()
+    got = [
+        None if b is None or (isinstance(b, float) and np.isnan(b)) else bytes(b)
+        for b in back["blob"]
+    ]
+    assert got == blobs
 
 
 def test_binary_layout_signature_and_field_lengths() -> None:

@@ -150,7 +150,7 @@ def _example_files(tmp_path: Path) -> tuple[Path, Path]:
 
 # aftercast adds its own benchmark forecasts; these tests look at the model they ingested.
 PRODUCTION = "model_id = (SELECT id FROM models WHERE name = 'm')"
-PAIR_TABLES = ["forecasts", "forecast_intervals", "actuals", "pairs", "pair_intervals"]
+PAIR_TABLES = ["forecasts", "actuals", "pairs", "pair_intervals"]
 
 
 def _pairs_without_times(engine: Engine) -> list[tuple[object, ...]]:
@@ -169,14 +169,14 @@ def test_ingest_twice_changes_nothing(engine: Engine, config: Config, tmp_path: 
     ingest_path(engine, config, "forecasts", forecasts)
     ingest_path(engine, config, "actuals", actuals)
     run_cycle(engine, config, parse_instant("2026-01-20"))
-    before = _dump(engine, ["forecasts", "forecast_intervals", "actuals", "actual_history"])
+    before = _dump(engine, ["forecasts", "actuals", "actual_history"])
     pairs_before = _pairs_without_times(engine)
     again_f = ingest_path(engine, config, "forecasts", forecasts)
     again_a = ingest_path(engine, config, "actuals", actuals)
     assert (again_f.accepted, again_f.unchanged, again_f.revised) == (0, 28, 0)
     assert (again_a.accepted, again_a.unchanged, again_a.revised) == (0, 16, 0)
     run_cycle(engine, config, parse_instant("2026-01-21"))
-    assert _dump(engine, ["forecasts", "forecast_intervals", "actuals", "actual_history"]) == before
+    assert _dump(engine, ["forecasts", "actuals", "actual_history"]) == before
     assert _pairs_without_times(engine) == pairs_before
 
 

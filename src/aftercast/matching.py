@@ -18,6 +18,7 @@ from sqlalchemy import Connection, Engine, text
 
 from aftercast import measures
 from aftercast.store import schema
+from aftercast.store.bounds import unpack_bounds
 from aftercast.store.bulk import (
     delete_by_ids,
     id_condition,
@@ -85,19 +86,18 @@ def _stored(
     Most of a day's candidates are new: knowing the few paired before keeps the replacement's
     deletes to those instead of probing three tables for every candidate.
     """
-    condition, params = id_condition(connection, "forecast_id", ids, "pair_ids")
-    intervals = read_frame(
+    condition, params = id_condition(connection, "f.id", ids, "pair_ids")
+    stored = read_frame(
         connection,
-        f"SELECT forecast_id, level, lower, upper FROM forecast_intervals WHERE {condition}",
+        "SELECT f.id, f.bound_layout, f.bounds, p.forecast_id AS paired FROM forecasts f "
+        f"LEFT JOIN pairs p ON p.forecast_id = f.id WHERE {condition}",
         params,
     )
-    quantiles = read_frame(
-        connection,
-        f"SELECT forecast_id, prob, value FROM forecast_quantiles WHERE {condition}",
-        params,
+    intervals, quantiles = unpack_bounds(
+        stored["id"].to_numpy(), stored["bound_layout"], stored["bounds"]
     )
-    paired = read_frame(connection, f"SELECT forecast_id FROM pairs WHERE {condition}", params)
-    return intervals, quantiles, paired["forecast_id"].to_numpy(np.int64)
+    paired = stored["paired"].dropna().to_numpy(np.int64)
+    return intervals, quantiles, paired
 
 
 def _scales(connection: Connection, pairs: pd.DataFrame) -> pd.DataFrame:

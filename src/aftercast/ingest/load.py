@@ -17,9 +17,9 @@ from sqlalchemy import Connection, text
 
 from aftercast.ingest.validate import Checked, bound_signature
 from aftercast.store import schema
+from aftercast.store.bounds import pack_bounds, unpack_bounds
 from aftercast.store.bulk import (
     allocate_ids,
-    delete_by_ids,
     id_condition,
     insert_frame,
     is_postgres,
@@ -59,7 +59,9 @@ def enqueue(connection: Connection, series_id: np.ndarray, period: np.ndarray, k
 
 
 _KEY = ["series_id", "model_id", "issued_at", "target_at"]
-_STORED = "f.id, f.series_id, f.model_id, f.issued_at, f.target_at, f.point"
+_STORED = (
+    "f.id, f.series_id, f.model_id, f.issued_at, f.target_at, f.point, f.bound_layout, f.bounds"
+)
 
 
 def _stored_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFrame:
@@ -98,19 +100,11 @@ def _existing_forecasts(connection: Connection, rows: pd.DataFrame) -> pd.DataFr
     found = _stored_forecasts(connection, rows)
     if found.empty:
         return found.assign(_bounds=pd.Series(dtype=np.uint64))
-    condition, params = id_condition(connection, "forecast_id", found["id"], "found_ids")
-    intervals = read_frame(
-        connection,
-        f"SELECT forecast_id AS row, level, lower, upper FROM forecast_intervals WHERE {condition}",
-        params,
-    )
-    quantiles = read_frame(
-        connection,
-        f"SELECT forecast_id AS row, prob, value FROM forecast_quantiles WHERE {condition}",
-        params,
+    intervals, quantiles = unpack_bounds(
+        found["id"].to_numpy(), found["bound_layout"], found["bounds"], key="row"
     )
     found["_bounds"] = bound_signature(intervals, quantiles, pd.Index(found["id"])).to_numpy()
-    return found
+    return found.drop(columns=["bound_layout", "bounds"])
 
 
 def write_forecasts(
@@ -127,6 +121,9 @@ def write_forecasts(
     rows["series_id"] = series_ids.reindex(rows["series_key"]).to_numpy(dtype="int64")
     rows["model_id"] = rows["model"].map(model_ids).astype("int64")
     rows["_bounds"] = bound_signature(checked.intervals, checked.quantiles, rows.index).to_numpy()
+    rows["bound_layout"], rows["bounds"] = pack_bounds(
+        rows.index, checked.intervals, checked.quantiles
+    )
     existing = _existing_forecasts(connection, rows)
     merged = rows.reset_index(names="row").merge(
         existing,
@@ -143,9 +140,6 @@ def write_forecasts(
     changed = merged[~is_new & ~same]
     fresh = merged[is_new].copy()
     fresh["id"] = allocate_ids(connection, schema.forecasts, len(fresh))
-    delete_by_ids(
-        connection, [schema.forecast_intervals, schema.forecast_quantiles], changed["id"].to_numpy()
-    )
     if len(changed):
         condition, params = id_condition(connection, "id", changed["id"], "changed")
         connection.execute(text(f"DELETE FROM forecasts WHERE {condition}"), params)
@@ -163,33 +157,20 @@ def write_forecasts(
         "horizon",
         "point",
         "ingested_at",
+        "bound_layout",
+        "bounds",
     ]
     insert_frame(
         connection,
         schema.forecasts,
         written[columns].astype({"issued_at": "int64", "target_at": "int64"}),
     )
-    row_to_id = pd.Series(written["id"].to_numpy(), index=written["row"].to_numpy())
-    _write_children(connection, checked, row_to_id)
     enqueue(
         connection, written["series_id"].to_numpy(), written["target_period"].to_numpy(), kind=0
     )
     return Written(
         accepted=len(fresh), unchanged=int(same.sum()) + checked.duplicates, revised=len(changed)
     )
-
-
-def _write_children(connection: Connection, checked: Checked, row_to_id: pd.Series) -> None:
-    for table, frame in (
-        (schema.forecast_intervals, checked.intervals),
-        (schema.forecast_quantiles, checked.quantiles),
-    ):
-        mine = frame[frame["row"].isin(row_to_id.index)]
-        if mine.empty:
-            continue
-        child = mine.drop(columns="row").copy()
-        child.insert(0, "forecast_id", row_to_id.reindex(mine["row"]).to_numpy())
-        insert_frame(connection, table, child)
 
 
 def write_actuals(

@@ -27,12 +27,13 @@ FIXED = {
     "BOOLEAN": "?",
 }
 TEXT = ("TEXT", "VARCHAR")
+BYTES = "BYTEA"
 # Beyond this many bytes of padded rows, text columns go the CSV way instead.
 MAX_LAYOUT_BYTES = 512 * 1024 * 1024
 
 
 def supported(type_name: str) -> bool:
-    return type_name in FIXED or type_name.startswith(TEXT)
+    return type_name in FIXED or type_name.startswith(TEXT) or type_name == BYTES
 
 
 def _text_values(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
@@ -45,6 +46,22 @@ def _text_values(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     lengths = np.char.str_len(encoded).astype(np.int32)
     lengths[missing] = -1
     return encoded, lengths
+
+
+def _byte_values(column: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Each value's bytes padded to the longest (numpy's "S" type would drop trailing zero
+    bytes, which a packed float may end with) and each value's length, -1 for NULL."""
+    missing = column.isna().to_numpy()
+    present = column.to_numpy(dtype=object)[~missing]
+    used = np.fromiter(map(len, present), dtype=np.int64, count=len(present))
+    width = max(int(used.max()) if used.size else 0, 1)
+    flat = np.frombuffer(b"".join(present.tolist()), dtype=np.uint8)
+    padded = np.zeros((len(column), width), dtype=np.uint8)
+    rows = np.repeat(np.flatnonzero(~missing), used)
+    padded[rows, np.arange(flat.size) - np.repeat(np.cumsum(used) - used, used)] = flat
+    lengths = np.full(len(column), -1, dtype=np.int32)
+    lengths[~missing] = used
+    return padded.view(np.dtype((np.void, width))).ravel(), lengths
 
 
 def _fixed_values(column: pd.Series, layout: str) -> tuple[np.ndarray, np.ndarray] | None:
@@ -83,6 +100,8 @@ def encode(frame: pd.DataFrame, type_names: list[str]) -> bytes | None:
             if fixed is None:
                 return None
             value, length = fixed
+        elif type_name == BYTES:
+            value, length = _byte_values(frame[name])
         else:
             value, length = _text_values(frame[name])
         values.append(value)

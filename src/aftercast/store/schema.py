@@ -2,9 +2,10 @@
 
 Integer surrogate keys for series and models and integer epoch seconds for every instant keep
 the bulk paths fast on both SQLite and PostgreSQL and make the store independent of each
-dialect's time-zone handling. Interval bounds and quantiles live in narrow child tables keyed by
-the forecast, so any level or quantile can be stored without a schema change and window
-aggregates are plain GROUP BYs.
+dialect's time-zone handling. A forecast's interval bounds and quantiles are packed into its own
+row (`bounds.py`: a layout naming the levels and a blob of their values), so any level or
+quantile is stored without a schema change and without a child row per bound; a pair's
+per-level measures stay in narrow child tables, so window aggregates are plain GROUP BYs.
 
 Tables are created by Alembic revisions (see `migrations/`); a revision that adds tables lists
 them by name, so earlier revisions keep creating exactly what they first created.
@@ -18,6 +19,7 @@ from sqlalchemy import (
     Float,
     Index,
     Integer,
+    LargeBinary,
     MetaData,
     SmallInteger,
     String,
@@ -65,26 +67,11 @@ forecasts = Table(
     Column("horizon", Integer, nullable=False),
     Column("point", Float, nullable=False),
     Column("ingested_at", BigInteger, nullable=False),
+    Column("bound_layout", Text),  # e.g. "80,95|10,50,90": levels | probabilities, percent
+    Column("bounds", LargeBinary),  # little-endian float64 in layout order, NaN where absent
     UniqueConstraint("series_id", "model_id", "issued_at", "target_at", name="uq_forecast_key"),
     Index("ix_forecasts_target", "series_id", "target_period"),
     Index("ix_forecasts_issue", "series_id", "issue_period"),
-)
-
-forecast_intervals = Table(
-    "forecast_intervals",
-    metadata,
-    Column("forecast_id", BigInteger, primary_key=True),
-    Column("level", Float, primary_key=True),  # percent, e.g. 80.0
-    Column("lower", Float, nullable=False),
-    Column("upper", Float, nullable=False),
-)
-
-forecast_quantiles = Table(
-    "forecast_quantiles",
-    metadata,
-    Column("forecast_id", BigInteger, primary_key=True),
-    Column("prob", Float, primary_key=True),  # percent, e.g. 10.0
-    Column("value", Float, nullable=False),
 )
 
 actuals = Table(
@@ -211,12 +198,11 @@ cycles = Table(
     Column("stats", Text, nullable=False, default="{}"),
 )
 
+# The tables revision 0001 created that are still in use (its others are frozen in the revision).
 INITIAL_TABLES = (
     "series",
     "models",
     "forecasts",
-    "forecast_intervals",
-    "forecast_quantiles",
     "actuals",
     "actual_history",
     "match_queue",
