@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from aftercast.ingest.validate import Reasons, _number, _text, _time
+from aftercast.ingest.cells import Reasons, number_values, text_values, time_values
 from aftercast.periods import _OFFSET_SUFFIX, _has_offset
 
 TRICKY = [
@@ -42,7 +42,7 @@ def _same_numbers(cells: list[object], dtype: object = object, required: bool = 
     frame = pd.DataFrame({"x": pd.Series(cells, dtype=dtype)})
     expected, expected_reasons = _slow_number(frame, "x", required)
     reasons = Reasons(frame.index)
-    got = _number(frame, "x", reasons, required)
+    got = number_values(frame, "x", reasons, required)
     assert got.dtype == np.float64
     np.testing.assert_array_equal(got.to_numpy(), expected.to_numpy())
     assert np.array_equal(np.signbit(got.to_numpy()), np.signbit(expected.to_numpy()))
@@ -104,9 +104,9 @@ def test_times_get_the_reasons_of_the_plain_check() -> None:
     raw = frame["t"]
     expected.flag(raw.isna() | (raw.astype("string").str.strip() == ""), "missing t")
     unparseable = "unparseable t: '" + raw.astype("string").fillna("") + "'"
-    expected.flag(_time(frame, "t", zones, Reasons(frame.index)).isna(), unparseable)
+    expected.flag(time_values(frame, "t", zones, Reasons(frame.index)).isna(), unparseable)
     reasons = Reasons(frame.index)
-    _time(frame, "t", zones, reasons)
+    time_values(frame, "t", zones, reasons)
     pd.testing.assert_series_equal(reasons.reason, expected.reason)
     assert reasons.reason.notna().sum() == 7
 
@@ -118,4 +118,4 @@ def test_offsets_and_keys_match_the_per_row_operations() -> None:
     np.testing.assert_array_equal(_has_offset(text).to_numpy(), expected)
     keys = pd.DataFrame({"k": [" s1 ", "s1", "", None, "\xa0s2\u3000", "s1", " "]})
     plain = keys["k"].astype("string").str.strip().replace("", pd.NA)
-    pd.testing.assert_series_equal(_text(keys, "k"), plain)
+    pd.testing.assert_series_equal(text_values(keys, "k"), plain)

@@ -13,8 +13,9 @@ import pandas as pd
 from sqlalchemy import Connection, text
 
 from aftercast.config import SeriesDefaults
+from aftercast.ingest.cells import Reasons, key_values
 from aftercast.ingest.load import Written
-from aftercast.ingest.validate import Checked, Reasons, _key, _package
+from aftercast.ingest.validate import Checked, _package
 from aftercast.periods import check_frequency, check_timezone
 from aftercast.store import schema
 from aftercast.store.bulk import insert_frame, read_frame
@@ -34,7 +35,7 @@ def _check_values(values: pd.Series, check: object, reasons: Reasons, column: st
 def check(frame: pd.DataFrame, first_row: int) -> Checked:
     frame = frame.reset_index(drop=True)
     reasons = Reasons(frame.index)
-    key = _key(frame, "series_id", reasons)
+    key = key_values(frame, "series_id", reasons)
     good = pd.DataFrame({"key": key})
     for column in ("frequency", "timezone", "unit"):
         if column in frame.columns:

@@ -15,17 +15,14 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from pandas._libs import lib
 
 from aftercast.errors import InputFileError
-from aftercast.periods import parse_times, periods_by_series
+from aftercast.ingest.cells import Reasons, key_values, number_values, time_values
+from aftercast.periods import periods_by_series
 
 FORECAST_REQUIRED = ["series_id", "model", "issued_at", "target_at", "point"]
 ACTUAL_REQUIRED = ["series_id", "observed_at", "value"]
 _BOUND = re.compile(r"^(lower|upper|q)_(\d+(?:\.\d+)?)$")
-# pandas keeps an all-integer column's values as integers and otherwise uses its float parse:
-# the two differ only from 2**53 on and for "-0", so then the column is parsed whole.
-_EXACT = 2.0**53
 
 
 @dataclass
@@ -41,32 +38,6 @@ class Checked:
     rejected_keys: list[str] = field(default_factory=list)  # refused when written (series only)
 
 
-class Reasons:
-    """Collects the first rejection reason per row."""
-
-    def __init__(self, index: pd.Index) -> None:
-        self.reason = pd.Series(pd.NA, index=index, dtype="string")
-
-    def flag(self, mask: pd.Series | np.ndarray, reason: str | pd.Series) -> None:
-        """Give `reason` to the rows of `mask` without one yet.
-
-        A Series mask or reason may cover only some rows (by label), so that a check can build
-        its reason text over the rows it flags instead of the whole chunk.
-        """
-        if isinstance(mask, pd.Series):
-            mask = mask.reindex(self.reason.index).to_numpy(dtype=bool, na_value=False)
-        rows = np.flatnonzero(np.asarray(mask, dtype=bool) & self.reason.isna().to_numpy())
-        if not len(rows):
-            return
-        if isinstance(reason, pd.Series):
-            reason = reason.reindex(self.reason.index[rows]).astype("string").to_numpy()
-        self.reason.iloc[rows] = reason
-
-    @property
-    def bad(self) -> pd.Series:
-        return self.reason.notna()
-
-
 def require_columns(frame: pd.DataFrame, required: list[str], source: str) -> None:
     missing = [c for c in required if c not in frame.columns]
     if missing:
@@ -78,81 +49,6 @@ def require_columns(frame: pd.DataFrame, required: list[str], source: str) -> No
 
 def extra_columns(frame: pd.DataFrame, known: list[str]) -> list[str]:
     return [c for c in frame.columns if c not in known and not _BOUND.match(str(c))]
-
-
-def _text(frame: pd.DataFrame, column: str) -> pd.Series:
-    # Keys repeat over a chunk (a few hundred series), so strip each distinct text once.
-    codes, distinct = pd.factorize(frame[column].astype("string"))
-    stripped = pd.Series(distinct, dtype="string").str.strip().replace("", pd.NA)
-    return pd.Series(stripped.array.take(codes, allow_fill=True), index=frame.index, name=column)
-
-
-def _key(frame: pd.DataFrame, column: str, reasons: Reasons) -> pd.Series:
-    values = _text(frame, column)
-    reasons.flag(values.isna(), f"missing {column}")
-    return values
-
-
-def _time(frame: pd.DataFrame, column: str, zones: pd.Series, reasons: Reasons) -> pd.Series:
-    raw = frame[column]
-    parsed = parse_times(raw, zones)
-    failed = raw[parsed.isna().to_numpy()]  # a missing time never parses, so only these can be
-    if len(failed):
-        text = failed.astype("string")
-        reasons.flag(failed.isna() | (text.str.strip() == ""), f"missing {column}")
-        reasons.flag(parsed.isna(), "unparseable " + column + ": '" + text.fillna("") + "'")
-    return parsed
-
-
-def _number(frame: pd.DataFrame, column: str, reasons: Reasons, required: bool = True) -> pd.Series:
-    """The column as pandas parses its stripped text; empty and non-finite cells get reasons.
-
-    Stripping and reason text cost most, so they run only over cells the quick parse left odd.
-    """
-    raw = frame[column]
-    values = _quick_numbers(raw)
-    odd = np.ones(len(raw), dtype=bool) if values is None else ~np.isfinite(values)
-    if values is None or odd.any():
-        values = np.full(len(raw), np.nan) if values is None else values
-        values[odd] = _text_numbers(raw[odd], column, reasons, required)
-    finite = values[np.isfinite(values)]
-    if ((np.abs(finite) >= _EXACT) | ((finite == 0) & np.signbit(finite))).any():
-        values = _column_numbers(raw, raw.astype("string").str.strip())[0]
-    return pd.Series(values, index=raw.index, name=raw.name)
-
-
-def _quick_numbers(raw: pd.Series) -> np.ndarray | None:
-    """The parse of the unstripped column (pandas skips the same whitespace), or None.
-
-    A float column still goes through its text: that parse can move a value by its last bit, and
-    a row ingested again must compare equal to what was stored.
-    """
-    if not isinstance(raw.dtype, np.dtype):
-        return None
-    if raw.dtype.kind in "iu":
-        return raw.to_numpy(np.float64)
-    if raw.dtype == np.float64:
-        return _column_numbers(raw, raw.astype("string"))[0]
-    if raw.dtype == object and lib.is_string_array(raw.to_numpy(), skipna=False):
-        return np.asarray(pd.to_numeric(raw.to_numpy(), errors="coerce"), dtype=np.float64)
-    return None
-
-
-def _column_numbers(raw: pd.Series, text: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    empty = raw.isna() | (text == "")
-    values = pd.to_numeric(text.where(~empty), errors="coerce").astype("float64")
-    return values.to_numpy(copy=True), empty.to_numpy(dtype=bool, na_value=False)
-
-
-def _text_numbers(raw: pd.Series, column: str, reasons: Reasons, required: bool) -> np.ndarray:
-    text = raw.astype("string").str.strip()
-    values, empty = _column_numbers(raw, text)
-    if required:
-        reasons.flag(pd.Series(empty, index=raw.index), f"missing {column}")
-    bad = ~empty & ~np.isfinite(values)
-    shown = f"{column} is not a finite number: '" + text[bad].fillna("") + "'"
-    reasons.flag(pd.Series(bad, index=raw.index), shown)
-    return values
 
 
 def _raw_json(frame: pd.DataFrame) -> pd.Series:
@@ -232,8 +128,8 @@ def _bounds(
                 f"interval bound without its pair: {only}",
             )
             continue
-        lower = _number(frame, columns["lower"], reasons, required=False)
-        upper = _number(frame, columns["upper"], reasons, required=False)
+        lower = number_values(frame, columns["lower"], reasons, required=False)
+        upper = number_values(frame, columns["upper"], reasons, required=False)
         one_side = lower.isna() != upper.isna()
         reasons.flag(
             one_side, f"interval bound without its pair: {columns['lower']}/{columns['upper']}"
@@ -254,7 +150,7 @@ def _bounds(
     quantiles = []
     previous: pd.Series | None = None
     for prob, column in sorted(probs.items()):
-        value = _number(frame, column, reasons, required=False)
+        value = number_values(frame, column, reasons, required=False)
         if previous is not None:
             reasons.flag(value < previous, f"quantiles cross: {column}")
         previous = value.where(value.notna(), previous) if previous is not None else value
@@ -276,14 +172,14 @@ def check_forecasts(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame)
     reasons = Reasons(frame.index)
     if "__unparseable__" in frame.columns:
         reasons.flag(frame["__unparseable__"].notna(), "not a JSON object")
-    series_key = _key(frame, "series_id", reasons)
-    model = _key(frame, "model", reasons)
+    series_key = key_values(frame, "series_id", reasons)
+    model = key_values(frame, "model", reasons)
     known = settings.reindex(series_key.fillna(""))
     zones = pd.Series(known["timezone"].to_numpy(), index=frame.index).fillna("UTC")
     freqs = pd.Series(known["frequency"].to_numpy(), index=frame.index).fillna("D")
-    issued = _time(frame, "issued_at", zones, reasons)
-    target = _time(frame, "target_at", zones, reasons)
-    point = _number(frame, "point", reasons)
+    issued = time_values(frame, "issued_at", zones, reasons)
+    target = time_values(frame, "target_at", zones, reasons)
+    point = number_values(frame, "point", reasons)
     intervals, quantiles = _bounds(frame, point, reasons)
     ok_times = issued.notna() & target.notna()
     issue_period = pd.Series(0, index=frame.index, dtype="int64")
@@ -302,7 +198,7 @@ def check_forecasts(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame)
     horizon = target_period - issue_period
     reasons.flag(ok_times & (horizon < 1), "target_at is not after the issue period")
     if "horizon" in frame.columns:
-        given = _number(frame, "horizon", reasons, required=False)
+        given = number_values(frame, "horizon", reasons, required=False)
         disagree = given.notna() & (given != horizon)
         reasons.flag(
             disagree,
@@ -405,12 +301,12 @@ def check_actuals(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame) -
     reasons = Reasons(frame.index)
     if "__unparseable__" in frame.columns:
         reasons.flag(frame["__unparseable__"].notna(), "not a JSON object")
-    series_key = _key(frame, "series_id", reasons)
+    series_key = key_values(frame, "series_id", reasons)
     known = settings.reindex(series_key.fillna(""))
     zones = pd.Series(known["timezone"].to_numpy(), index=frame.index).fillna("UTC")
     freqs = pd.Series(known["frequency"].to_numpy(), index=frame.index).fillna("D")
-    observed = _time(frame, "observed_at", zones, reasons)
-    value = _number(frame, "value", reasons)
+    observed = time_values(frame, "observed_at", zones, reasons)
+    value = number_values(frame, "value", reasons)
     period = pd.Series(0, index=frame.index, dtype="int64")
     ok = observed.notna()
     if ok.any():
