@@ -21,10 +21,12 @@ from sqlalchemy import (
     Table,
     Text,
     create_engine,
+    text,
 )
 
-from aftercast.store import copy_binary
+from aftercast.store import copy_binary, schema
 from aftercast.store.bulk import allocate_ids, id_condition, insert_frame, read_frame
+from aftercast.store.db import make_engine, migrate, refresh_statistics
 
 
 def _table() -> Table:
@@ -204,3 +206,24 @@ def test_postgres_sessions_keep_the_urls_own_options(pg_url: str) -> None:
         timeout = connection.execute(text("SHOW statement_timeout")).scalar()
     engine.dispose()
     assert (jit, timeout) == ("off", "12345ms")
+
+
+def test_planner_statistics_follow_the_rows_just_written(store_url: str) -> None:
+    # PostgreSQL documents that ANALYZE updates pg_class.reltuples (a table this small is read
+    # whole, so the count is exact); SQLite is left alone, so no sqlite_stat1 table appears.
+    engine = make_engine(store_url)
+    migrate(engine)
+    frame = pd.DataFrame({"series_id": np.arange(500), "period": 7, "kind": 0})
+    with engine.begin() as connection:
+        insert_frame(connection, schema.match_queue, frame)
+    refresh_statistics(engine, ("match_queue",))
+    with engine.connect() as connection:
+        if store_url.startswith("postgresql"):
+            tuples = connection.execute(
+                text("SELECT reltuples FROM pg_class WHERE relname = 'match_queue'")
+            ).scalar_one()
+            assert tuples == 500
+        else:
+            names = connection.execute(text("SELECT name FROM sqlite_master")).scalars().all()
+            assert "sqlite_stat1" not in names
+    engine.dispose()

@@ -31,7 +31,7 @@ from aftercast.ingest.load import write_forecasts
 from aftercast.ingest.validate import Checked
 from aftercast.store.bulk import insert_frame, read_frame, stage_keys
 from aftercast.store.catalog import ensure_models
-from aftercast.store.db import write
+from aftercast.store.db import refresh_statistics, write
 from aftercast.store.schema_detect import forecast_activity
 
 _FORECAST_COLUMNS = (
@@ -250,6 +250,7 @@ def make_benchmarks(
     total = BenchmarkStats()
     if queued.empty:
         return total
+    refresh_statistics(engine, ("forecasts", "actuals", "match_queue"))
     batch = (queued["n"].cumsum() // batch_rows).to_numpy()
     for index in np.unique(batch):
         with write(engine) as connection:

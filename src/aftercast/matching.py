@@ -26,7 +26,7 @@ from aftercast.store.bulk import (
     read_frame,
     stage_keys,
 )
-from aftercast.store.db import write
+from aftercast.store.db import refresh_statistics, write
 
 PAIR_COLUMNS = [c.name for c in schema.pairs.columns]
 _CANDIDATE_COLUMNS = (
@@ -182,6 +182,8 @@ def match(
     if series_ids is not None:
         queue = queue[queue["series_id"].isin(series_ids)]
     stats = MatchStats(queued=len(queue))
+    if len(queue):
+        refresh_statistics(engine, ("forecasts", "actuals", "pairs", "match_queue"))
     touched = []
     sizes = queue.groupby("series_id").size()
     batch_of = (sizes.cumsum() // batch_rows).rename("batch")
