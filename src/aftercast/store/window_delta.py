@@ -16,7 +16,7 @@ from __future__ import annotations
 import pandas as pd
 from sqlalchemy import Connection, text
 
-from aftercast.store.bulk import read_frame
+from aftercast.store.bulk import is_postgres, read_frame
 from aftercast.store.schema_windows import SUM_TABLES
 from aftercast.store.window_sums import GROUP, PARTS, aggregates_select
 from aftercast.windows import EXTREMES, HORIZON_KEY, WindowSums
@@ -46,6 +46,37 @@ def without_extremes(sums: WindowSums) -> WindowSums:
     return WindowSums(sums.points.assign(**{c: 0 for c in EXTREMES}), sums.levels, sums.quantiles)
 
 
+# The pair columns the sums read (`window_sums.PARTS`); the strips carry only these.
+_STRIP_COLUMNS = (
+    "forecast_id, series_id, model_id, horizon, actual, error, abs_error, sq_error, ape, sape, "
+    "scaled_error, scale_sq"
+)
+
+
+def _stage_strips(connection: Connection, params: dict[str, int]) -> str:
+    """The two strips of pairs in one temporary table, each pair with its sign.
+
+    Staged once for the three sum tables, which each read it, instead of each statement
+    selecting the strips from pairs again; each strip is a range of ix_pairs_target (grouping
+    straight over pairs let SQLite walk the whole (series, model, target) index in group order).
+    """
+    table = "tmp_window_strips"
+    connection.execute(text(f"DROP TABLE IF EXISTS {table}"))
+    on_commit = " ON COMMIT DROP" if is_postgres(connection) else ""
+    connection.execute(
+        text(
+            f"CREATE TEMP TABLE {table}{on_commit} AS "
+            f"SELECT {_STRIP_COLUMNS}, 1 AS sign FROM pairs "
+            "WHERE target_at > :before AND target_at <= :now "
+            "UNION ALL "
+            f"SELECT {_STRIP_COLUMNS}, -1 AS sign FROM pairs "
+            "WHERE target_at > :left_from AND target_at <= :left_to"
+        ),
+        params,
+    )
+    return table
+
+
 def apply_strips(
     connection: Connection, window_name: str, before: int, now: int, span: int
 ) -> None:
@@ -56,22 +87,13 @@ def apply_strips(
     are disjoint while now - before < span), and adds the result to the stored rows, so no
     strip is read into memory whatever the fleet's size. Rows left with no pairs are dropped.
     Extremes of new rows are zero, as a `days` window stores them (`without_extremes`).
+    The sums go in key order: rows arriving in the primary key's order touch its index pages
+    one after another instead of at random (a quarter less time on PostgreSQL at 10,000
+    series, bench/EXPLAIN.md).
     """
-    params = {
-        "w": window_name,
-        "before": before,
-        "now": now,
-        "left_from": before - span,
-        "left_to": now - span,
-    }
-    # The two strips first, each a range of ix_pairs_target, with their sign; grouping straight
-    # over pairs let SQLite walk the whole (series, model, target) index in group order.
-    strips = (
-        "WITH p AS MATERIALIZED ("
-        "SELECT s.*, 1 AS sign FROM pairs s WHERE s.target_at > :before AND s.target_at <= :now "
-        "UNION ALL "
-        "SELECT s.*, -1 AS sign FROM pairs s "
-        "WHERE s.target_at > :left_from AND s.target_at <= :left_to) "
+    strips = _stage_strips(
+        connection,
+        {"before": before, "now": now, "left_from": before - span, "left_to": now - span},
     )
     for part, (table, extra) in SUM_TABLES.items():
         join, extra_column, aggregates = PARTS[part]
@@ -86,12 +108,13 @@ def apply_strips(
         # "WHERE" before GROUP BY also keeps SQLite from reading ON CONFLICT as a join's ON.
         connection.execute(
             text(
-                f"{strips}INSERT INTO {table.name} (window_name, {columns}) "
+                f"INSERT INTO {table.name} (window_name, {columns}) "
                 f"SELECT CAST(:w AS VARCHAR(64)), {group}, {sums_select}"
-                f"{zero_values} FROM p {join} WHERE true GROUP BY {group} "
+                f"{zero_values} FROM {strips} p {join} WHERE true GROUP BY {group} "
+                f"ORDER BY {group} "
                 f"ON CONFLICT (window_name, {', '.join(keys)}) DO UPDATE SET {assign}"
             ),
-            params,
+            {"w": window_name},
         )
         connection.execute(
             text(f"DELETE FROM {table.name} WHERE window_name = :w AND n <= 0"), {"w": window_name}
