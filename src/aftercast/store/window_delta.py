@@ -16,7 +16,7 @@ from __future__ import annotations
 import pandas as pd
 from sqlalchemy import Connection, text
 
-from aftercast.store.bulk import is_postgres, read_frame
+from aftercast.store.bulk import read_frame
 from aftercast.store.schema_windows import SUM_TABLES
 from aftercast.store.window_sums import GROUP, PARTS, aggregates_select
 from aftercast.windows import EXTREMES, HORIZON_KEY, WindowSums
@@ -59,13 +59,13 @@ def _stage_strips(connection: Connection, params: dict[str, int]) -> str:
     Staged once for the three sum tables, which each read it, instead of each statement
     selecting the strips from pairs again; each strip is a range of ix_pairs_target (grouping
     straight over pairs let SQLite walk the whole (series, model, target) index in group order).
+    The caller drops it when done; both stores undo its creation if the transaction rolls back.
     """
     table = "tmp_window_strips"
     connection.execute(text(f"DROP TABLE IF EXISTS {table}"))
-    on_commit = " ON COMMIT DROP" if is_postgres(connection) else ""
     connection.execute(
         text(
-            f"CREATE TEMP TABLE {table}{on_commit} AS "
+            f"CREATE TEMP TABLE {table} AS "
             f"SELECT {_STRIP_COLUMNS}, 1 AS sign FROM pairs "
             "WHERE target_at > :before AND target_at <= :now "
             "UNION ALL "
@@ -119,3 +119,5 @@ def apply_strips(
         connection.execute(
             text(f"DELETE FROM {table.name} WHERE window_name = :w AND n <= 0"), {"w": window_name}
         )
+    # Up to two days of pairs: not left on a pooled connection until the next cycle.
+    connection.execute(text(f"DROP TABLE {strips}"))
