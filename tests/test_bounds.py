@@ -136,6 +136,8 @@ def test_migration_packs_child_rows_and_the_downgrade_restores_them(
         assert stored.set_index("id")["bound_layout"].isna().tolist() == [False] * 3 + [True]
         return
     with write(engine) as connection:
+        # The branch's later revisions first, then packing itself.
+        command.downgrade(_alembic_config(connection), "0008_interval_levels@-1")
         command.downgrade(_alembic_config(connection), "0007_packed_bounds@-1")
     with engine.connect() as connection:
         intervals = connection.execute(text("SELECT * FROM forecast_intervals")).all()

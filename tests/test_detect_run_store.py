@@ -161,6 +161,20 @@ def test_detection_by_pages_of_series_equals_one_page_of_the_fleet(
     )
 
 
+def _cycled_store(
+    store_url: str, scenario: Scenario, window: dict[str, int]
+) -> tuple[Engine, Config, int]:
+    """A store fed 30 days of the scenario and cycled, detecting over `window`."""
+    from aftercast.store.db import make_engine, migrate
+
+    config = make_config(store_url, window=window, baseline={"days": 14})
+    engine = make_engine(store_url)
+    migrate(engine)
+    load_through(engine, config, scenario, 30)
+    cycle_on(engine, config, scenario, 30)
+    return engine, config, cycle_time(scenario, 30)
+
+
 def test_points_window_reads_the_latest_periods_and_their_intervals(
     store_url: str, scenario: Scenario
 ) -> None:
@@ -168,14 +182,8 @@ def test_points_window_reads_the_latest_periods_and_their_intervals(
     periods at or before the clock, and every interval row read belongs to one of those pairs
     (checked against a plain pandas selection of the stored pairs)."""
     from aftercast.detect.gather import window_data
-    from aftercast.store.db import make_engine, migrate
 
-    config = make_config(store_url, window={"points": 5}, baseline={"days": 14})
-    engine = make_engine(store_url)
-    migrate(engine)
-    load_through(engine, config, scenario, 30)
-    cycle_on(engine, config, scenario, 30)
-    now = cycle_time(scenario, 30)
+    engine, config, now = _cycled_store(store_url, scenario, {"points": 5})
     with engine.connect() as connection:
         data = window_data(connection, config, now)
         stored = read_frame(
@@ -194,3 +202,63 @@ def test_points_window_reads_the_latest_periods_and_their_intervals(
     assert got == expected and len(expected) == 24 * 5
     assert set(data.hits["forecast_id"]) == set(data.pairs["forecast_id"])
     assert len(data.hits) == len(data.pairs) * int(levels["n"][0]) > 0
+
+
+@pytest.mark.parametrize("window", [{"days": 14}, {"points": 5}])
+def test_levels_read_as_columns_give_the_rows_of_a_read_per_level(
+    store_url: str, scenario: Scenario, window: dict[str, int], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """Detection reads each pair's interval levels as columns of its row; split back into a
+    row per (pair, level) they must hold the same rows and values as the row-per-level read
+    (the path taken beyond `MAX_JOINED_LEVELS`), and every stored interval row of the
+    window's pairs."""
+    from aftercast.detect import gather
+
+    engine, config, now = _cycled_store(store_url, scenario, window)
+    with engine.connect() as connection:
+        wide = gather.window_data(connection, config, now)
+        monkeypatch.setattr(gather, "MAX_JOINED_LEVELS", 0)
+        long = gather.window_data(connection, config, now)
+        stored = read_frame(connection, "SELECT forecast_id, level, hit FROM pair_intervals")
+    engine.dispose()
+    assert len(wide.hits) > len(wide.pairs) > 0 and len(wide.benchmark_hits) > 0
+    for got, expected in ((wide.hits, long.hits), (wide.benchmark_hits, long.benchmark_hits)):
+        order = ["forecast_id", "level"]
+        pd.testing.assert_frame_equal(
+            got.sort_values(order).reset_index(drop=True),
+            expected[got.columns].sort_values(order).reset_index(drop=True),
+        )
+    pd.testing.assert_frame_equal(wide.pairs, long.pairs)
+    mine = stored.loc[stored["forecast_id"].isin(wide.pairs["forecast_id"])]
+    assert sorted(map(tuple, mine.values.tolist())) == sorted(
+        map(tuple, wide.hits[["forecast_id", "level", "hit"]].values.tolist())
+    )
+
+
+def test_interval_levels_list_every_scored_level_and_the_migration_fills_them(
+    store_url: str, scenario: Scenario
+) -> None:
+    """Matching lists each level it scores in `interval_levels`; revision
+    `0008_interval_levels` fills the list from a store's existing pairs."""
+    from alembic import command
+    from sqlalchemy import text
+
+    from aftercast.store.db import _alembic_config, make_engine, migrate, write
+
+    config = make_config(store_url, **SECTIONS)
+    engine = make_engine(store_url)
+    migrate(engine)
+    load_through(engine, config, scenario, 20)
+    cycle_on(engine, config, scenario, 20)
+    query = "SELECT level FROM interval_levels ORDER BY level"
+    with engine.connect() as connection:
+        listed = connection.execute(text(query)).scalars().all()
+        scored = connection.execute(text("SELECT DISTINCT level FROM pair_intervals")).all()
+    assert listed == sorted(row[0] for row in scored) == [80.0, 95.0]
+    with write(engine) as connection:
+        command.downgrade(_alembic_config(connection), "0008_interval_levels@-1")
+        connection.execute(text("INSERT INTO pair_intervals VALUES (-1, 50.0, 0, 1, 1, 1, 0.5)"))
+    migrate(engine)
+    with engine.connect() as connection:
+        assert connection.execute(text(query)).scalars().all() == [50.0, 80.0, 95.0]
+    engine.dispose()

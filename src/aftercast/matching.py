@@ -26,6 +26,7 @@ from aftercast.store.bulk import (
     read_frame,
     stage_keys,
 )
+from aftercast.store.catalog import register_levels
 from aftercast.store.db import refresh_statistics, write
 
 PAIR_COLUMNS = [c.name for c in schema.pairs.columns]
@@ -161,7 +162,9 @@ def _match_batch(connection: Connection, queue: pd.DataFrame, now: int) -> tuple
             connection, [schema.pairs, schema.pair_intervals, schema.pair_quantiles], replaced
         )
         insert_frame(connection, schema.pairs, scored)
-        insert_frame(connection, schema.pair_intervals, score_intervals(intervals, actual))
+        scored_intervals = score_intervals(intervals, actual)
+        insert_frame(connection, schema.pair_intervals, scored_intervals)
+        register_levels(connection, scored_intervals["level"].unique())
         insert_frame(connection, schema.pair_quantiles, score_quantiles(quantiles, actual))
     connection.execute(
         text(

@@ -21,6 +21,7 @@ from aftercast.detect.profiles import KEY, with_buckets
 from aftercast.detect.settings import BENCHMARK_PREFIX, bucket_labels
 from aftercast.periods import periods_by_series
 from aftercast.store.bulk import id_condition, is_postgres, read_frame, stage_keys
+from aftercast.store.catalog import interval_levels
 from aftercast.window_store import find_window
 
 DAY = 86_400
@@ -31,12 +32,15 @@ _PAIR_COLUMNS = (
     "p.forecast_id, p.series_id, p.model_id, p.horizon, p.issued_at, p.target_at, "
     "p.target_period, p.actual, p.point, p.error, p.abs_error, p.sq_error"
 )
-_HIT_COLUMNS = "i.forecast_id, i.level, i.lower, i.upper, i.hit, i.interval_score"
+_HIT_MEASURES = ("lower", "upper", "hit", "interval_score")
 _BENCHMARK_PAIR_COLUMNS = (
     "p.forecast_id, p.series_id, p.model_id, p.horizon, p.issued_at, p.target_at, "
     "p.target_period, p.abs_error"
 )
-_BENCHMARK_HIT_COLUMNS = "i.forecast_id, i.level, i.interval_score"
+_BENCHMARK_HIT_MEASURES = ("interval_score",)
+# Up to this many levels are read as columns of their pair (one LEFT JOIN each); beyond it,
+# as a row per (pair, level).
+MAX_JOINED_LEVELS = 12
 
 
 @dataclass
@@ -70,13 +74,14 @@ class _Source:
     def select(self, columns: str) -> str:
         return f"SELECT {columns} FROM pairs p {self.joins}WHERE {self.where}"
 
-    def select_intervals(self, columns: str) -> str:
+    def select_intervals(self, measures: tuple[str, ...]) -> str:
         """The interval rows of the window's pairs, as `i`, joined in the database.
 
         PostgreSQL is made to look each pair's rows up by key (a lateral subquery that the
         planner may not flatten): left to choose, it hashed every interval row in the store
         once per page of series, so detection grew with the square of the fleet.
         """
+        columns = ", ".join(f"i.{name}" for name in ("forecast_id", "level", *measures))
         if self.probe:
             rows = (
                 "CROSS JOIN LATERAL (SELECT * FROM pair_intervals i0 "
@@ -85,6 +90,36 @@ class _Source:
         else:
             rows = "JOIN pair_intervals i ON i.forecast_id = p.forecast_id "
         return f"SELECT {columns} FROM pairs p {self.joins}{rows}WHERE {self.where}"
+
+    def select_with_levels(
+        self, columns: str, measures: tuple[str, ...], levels: list[float]
+    ) -> tuple[str, dict[str, Any]]:
+        """The window's pairs, each with its interval measures of every level as columns
+        `{measure}_{j}` (NULL where the pair has no interval at `levels[j]`).
+
+        One row per pair instead of one per (pair, level): fetching a row into Python costs
+        about the same whatever its width, and this read is most of detection's time.
+        """
+        joins, selected, params = [], [columns], dict(self.params)
+        for j, level in enumerate(levels):
+            params[f"level_{j}"] = level
+            selected += [f"i{j}.{name} AS {name}_{j}" for name in measures]
+            if self.probe:  # a keyed lookup per pair, as in `select_intervals`
+                joins.append(
+                    f"LEFT JOIN LATERAL (SELECT * FROM pair_intervals l{j} WHERE "
+                    f"l{j}.forecast_id = p.forecast_id AND l{j}.level = :level_{j} "
+                    f"OFFSET 0) i{j} ON TRUE "
+                )
+            else:
+                joins.append(
+                    f"LEFT JOIN pair_intervals i{j} ON i{j}.forecast_id = p.forecast_id "
+                    f"AND i{j}.level = :level_{j} "
+                )
+        sql = (
+            f"SELECT {', '.join(selected)} FROM pairs p {self.joins}{''.join(joins)}"
+            f"WHERE {self.where}"
+        )
+        return sql, params
 
 
 def _window_source(
@@ -144,20 +179,48 @@ def _read_window(
     now: int,
     model_ids: list[int],
     series_ids: np.ndarray | None,
-    columns: tuple[str, str],
+    columns: tuple[str, tuple[str, ...]],
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """The window's pairs of `model_ids`, bucketed, and their interval rows (each with the
-    pair's key columns): one range read each, the interval rows joined in the database."""
-    pair_columns, hit_columns = columns
+    pair's key columns), read together in one range read: each level's measures joined to
+    its pair in the database, or with many levels the interval rows read on their own."""
+    pair_columns, measures = columns
     source = _window_source(connection, detection_window(config), now, model_ids, series_ids)
-    pairs = read_frame(connection, source.select(pair_columns), source.params)
+    levels = interval_levels(connection)
+    wide = len(levels) <= MAX_JOINED_LEVELS
+    if wide:
+        pairs = read_frame(connection, *source.select_with_levels(pair_columns, measures, levels))
+    else:
+        pairs = read_frame(connection, source.select(pair_columns), source.params)
     if source.points is not None:
         pairs = _latest_periods(pairs, source.points)
     pairs = with_buckets(pairs, bucket_labels(config.horizon_buckets))
-    intervals = read_frame(connection, source.select_intervals(hit_columns), source.params)
     key = ["forecast_id", *KEY, "horizon", "issued_at", "target_period", "target_at"]
     key += ["actual"] if "actual" in pairs.columns else []
+    if wide:
+        return _split_levels(pairs, key, measures, levels)
+    intervals = read_frame(connection, source.select_intervals(measures), source.params)
     return pairs, intervals.merge(pairs[key], on="forecast_id")
+
+
+def _split_levels(
+    pairs: pd.DataFrame, key: list[str], measures: tuple[str, ...], levels: list[float]
+) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Pairs read with their levels as columns -> the pairs, and a row per (pair, level)
+    where the pair has an interval at that level, in pair order and then level order (as a
+    row-per-level read would return them)."""
+    columns = {name: [f"{name}_{j}" for j in range(len(levels))] for name in measures}
+    present = pairs[columns[measures[0]]].notna().to_numpy()
+    rows, slots = np.nonzero(present)  # row-major: pair by pair, each pair's levels in order
+    hits = {"forecast_id": pairs["forecast_id"].to_numpy()[rows]}
+    hits["level"] = np.asarray(levels, dtype=np.float64)[slots]
+    for name, named in columns.items():
+        hits[name] = pairs[named].to_numpy(np.float64)[rows, slots]
+    hits |= {name: pairs[name].to_numpy()[rows] for name in key[1:]}
+    frame = pd.DataFrame(hits)
+    if "hit" in frame.columns:
+        frame["hit"] = frame["hit"].astype(np.int64)
+    return pairs.drop(columns=[c for named in columns.values() for c in named]), frame
 
 
 def window_data(
@@ -171,8 +234,8 @@ def window_data(
     is_reference = models == model_name(config.detection.benchmark)
     is_tested = ~is_benchmark | (config.detection.include_benchmarks & ~is_reference)
     reads = (
-        (is_tested, (_PAIR_COLUMNS, _HIT_COLUMNS)),
-        (is_reference, (_BENCHMARK_PAIR_COLUMNS, _BENCHMARK_HIT_COLUMNS)),
+        (is_tested, (_PAIR_COLUMNS, _HIT_MEASURES)),
+        (is_reference, (_BENCHMARK_PAIR_COLUMNS, _BENCHMARK_HIT_MEASURES)),
     )
     (pairs, hits), (benchmark, benchmark_hits) = (
         _read_window(

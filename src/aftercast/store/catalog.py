@@ -12,7 +12,7 @@ import time
 from collections.abc import Iterable
 
 import pandas as pd
-from sqlalchemy import Connection, select
+from sqlalchemy import Connection, select, text
 
 from aftercast.config import Config
 from aftercast.store import schema
@@ -96,3 +96,23 @@ def all_series(connection: Connection) -> pd.DataFrame:
     frame = read_frame(connection, "SELECT * FROM series ORDER BY key")
     frame["labels"] = frame["labels"].map(json.loads)
     return frame
+
+
+def interval_levels(connection: Connection) -> list[float]:
+    """The interval levels pairs have been scored at, ascending (a superset of those stored)."""
+    rows = connection.execute(select(schema.interval_levels.c.level)).scalars()
+    return sorted(float(level) for level in rows)
+
+
+def register_levels(connection: Connection, levels: Iterable[float]) -> None:
+    """List the `levels` just scored in `interval_levels`, in the caller's transaction.
+
+    Only levels not yet listed are written, so the usual batch writes nothing; two replicas
+    registering the same new level at once both succeed (the second insert does nothing).
+    """
+    new = sorted(set(float(level) for level in levels) - set(interval_levels(connection)))
+    if new:
+        connection.execute(
+            text("INSERT INTO interval_levels (level) VALUES (:level) ON CONFLICT DO NOTHING"),
+            [{"level": level} for level in new],
+        )

@@ -150,6 +150,15 @@ pair_intervals = Table(
     Column("interval_score", Float, nullable=False),
 )
 
+# Every interval level a pair has been scored at (a superset: a level stays listed after its
+# pairs are gone). The detection read joins each level's row as columns of its pair instead of
+# fetching a row per (pair, level).
+interval_levels = Table(
+    "interval_levels",
+    metadata,
+    Column("level", Float, primary_key=True),
+)
+
 pair_quantiles = Table(
     "pair_quantiles",
     metadata,
