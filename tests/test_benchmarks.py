@@ -191,3 +191,22 @@ def test_benchmarks_do_not_depend_on_arrival_order(
     cycle_on(other, other_config, small, 12)
     pd.testing.assert_frame_equal(_benchmark_rows(engine), _benchmark_rows(other))
     other.dispose()
+
+
+def test_past_errors_are_the_lagged_differences_of_each_series_with_gaps() -> None:
+    """Against a direct computation on statsmodels' Nile data (and a gappy copy of it):
+    y_t - y_(t - lag) wherever both periods are stored."""
+    from aftercast.benchmark_methods import _past_errors
+
+    nile = _nile()
+    other = nile.assign(series_id=2, value=nile["value"] * 0.5)
+    history = pd.concat([nile, other.loc[other["period"] % 7 != 3]]).sample(frac=1, random_state=3)
+    needed = pd.DataFrame({"series_id": [2, 1, 2], "lag": [1, 3, 7]})
+    got = _past_errors(history, needed)
+    expected = []
+    for series, lag in [(1, 3), (2, 1), (2, 7)]:
+        y = history.loc[history["series_id"] == series].set_index("period")["value"]
+        for period, value in y.sort_index().items():
+            if period - lag in y.index:
+                expected.append((series, lag, period, value - y[period - lag]))
+    assert list(got.itertuples(index=False, name=None)) == expected

@@ -110,13 +110,39 @@ def point_forecasts(method: str, history: pd.DataFrame, requests: pd.DataFrame) 
 
 
 def _past_errors(history: pd.DataFrame, needed: pd.DataFrame) -> pd.DataFrame:
-    """e_t = y_t - y_(t - lag) for every (series, lag) in `needed`, ordered by period."""
-    expanded = history.merge(needed, on="series_id")
-    expanded["source"] = expanded["period"] - expanded["lag"]
-    earlier = history.rename(columns={"period": "source", "value": "value_lag"})
-    errors = expanded.merge(earlier, on=["series_id", "source"])
-    errors["error"] = errors["value"] - errors["value_lag"]
-    return errors.sort_values(["series_id", "lag", "period"], kind="stable").reset_index(drop=True)
+    """e_t = y_t - y_(t - lag) for every (series, lag) in `needed`, ordered by series, lag and
+    period (columns series_id, lag, period, error).
+
+    Array lookups, not joins: history sorted by (series, period) holds each series' actuals as
+    one run, so every (series, lag) takes its series' run, and y_(t - lag) is found by a binary
+    search on a combined (series, period) key.
+    """
+    ordered = history.sort_values(["series_id", "period"], kind="stable")
+    series = ordered["series_id"].to_numpy(np.int64)
+    period = ordered["period"].to_numpy(np.int64)
+    value = ordered["value"].to_numpy(np.float64)
+    wanted = needed.sort_values(["series_id", "lag"], kind="stable")
+    wanted_series = wanted["series_id"].to_numpy(np.int64)
+    first = np.searchsorted(series, wanted_series, side="left")
+    count = np.searchsorted(series, wanted_series, side="right") - first
+    # The history rows of each wanted (series, lag), run after run.
+    rows = np.repeat(first - np.cumsum(count) + count, count) + np.arange(count.sum())
+    lag = np.repeat(wanted["lag"].to_numpy(np.int64), count)
+    low = period.min() if len(period) else 0
+    key = series * (np.int64(period.max() - low + 1) if len(period) else 1) + (period - low)
+    source = np.searchsorted(key, key[rows] - lag)
+    source = np.minimum(source, max(len(key) - 1, 0))
+    # A key below the series' first period would land in the series before it.
+    found = (period[rows] - lag >= low) & (key[source] == key[rows] - lag)
+    rows, lag, source = rows[found], lag[found], source[found]
+    return pd.DataFrame(
+        {
+            "series_id": series[rows],
+            "lag": lag,
+            "period": period[rows],
+            "error": value[rows] - value[source],
+        }
+    )
 
 
 def _latest_windows(
