@@ -36,7 +36,7 @@ from aftercast.coordination import (
 from aftercast.errors import AftercastError
 from aftercast.ingest import ingest_path
 from aftercast.scenario import series_ids
-from aftercast.sources.base import Schedule
+from aftercast.settings.schedule import Schedule
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate, write
 from aftercast.store.leases import FLEET

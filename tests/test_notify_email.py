@@ -20,12 +20,9 @@ from typing import Any
 import pytest
 from PIL import Image
 
-from aftercast.notify import (
-    EmailChannel,
-    EmailChannelConfig,
-    parse_channel_config,
-)
+from aftercast.notify import EmailChannel, parse_channel_config
 from aftercast.notify.render import render_subject
+from aftercast.settings.channels import EmailChannelConfig
 from tests.servers import (
     LOOPBACK,
     NASTY_SERIES_ID,

@@ -73,7 +73,7 @@ def replica_main(config_path: str, clock_path: str, name: str) -> None:
 
 
 def enqueue_notifications(engine: Engine) -> list[str]:
-    from aftercast.alerts.routing import Digest
+    from aftercast.notify.base import Digest
     from aftercast.notify.outbox import enqueue
 
     ids = [f"replica-test-{i:03d}" for i in range(NOTIFICATIONS)]

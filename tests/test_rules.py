@@ -19,7 +19,6 @@ import yaml
 from aftercast.alerts.rules import (
     DEFAULT_RULES,
     DETECTIONS,
-    RuleConfig,
     effective_rules,
     evaluate_rules,
     explain_rule,
@@ -27,6 +26,7 @@ from aftercast.alerts.rules import (
 from aftercast.cli import main
 from aftercast.config import parse_config
 from aftercast.errors import ConfigError
+from aftercast.settings.alerts import RuleConfig
 
 
 def test_defaults_cover_every_detection_when_no_rules_are_configured() -> None:

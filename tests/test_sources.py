@@ -22,7 +22,7 @@ from aftercast.config import Config, parse_config
 from aftercast.errors import ConfigError
 from aftercast.ingest import ingest_path
 from aftercast.periods import parse_instant
-from aftercast.sources.base import Schedule
+from aftercast.settings.schedule import Schedule
 from aftercast.sources.pull import pull_all, pull_source
 from aftercast.sources.sql import decode_watermark
 from aftercast.store.db import make_engine, migrate

@@ -21,8 +21,8 @@ from sqlalchemy import Connection, Engine
 
 from aftercast.config import Config
 from aftercast.detect.profiles import KEY, baseline_summaries, with_buckets
-from aftercast.detect.settings import bucket_labels
 from aftercast.errors import AftercastError
+from aftercast.settings.detection import bucket_labels
 from aftercast.store.bulk import allocate_ids, insert_frame, read_frame, stage_keys
 from aftercast.store.db import write
 from aftercast.store.queries import intervals_for

@@ -22,9 +22,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from aftercast.detect.settings import BENCHMARK_PREFIX
-
 METHODS = ("naive", "seasonal-naive")
+# Benchmark forecasts are stored under the model names `benchmark:<method>`.
+BENCHMARK_PREFIX = "benchmark:"
 
 
 def model_name(method: str) -> str:

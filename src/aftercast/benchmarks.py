@@ -25,8 +25,8 @@ import pandas as pd
 from sqlalchemy import Connection, Engine
 
 from aftercast import benchmark_methods
+from aftercast.benchmark_methods import BENCHMARK_PREFIX
 from aftercast.config import Config
-from aftercast.detect.settings import BENCHMARK_PREFIX
 from aftercast.ingest.load import write_forecasts
 from aftercast.ingest.validate import Checked
 from aftercast.store.bulk import insert_frame, read_frame, stage_keys

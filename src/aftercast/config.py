@@ -4,7 +4,8 @@ The file is read, `${ENV_VAR}` references are substituted (secrets live in the e
 the file), and the result is validated against the models below. Unknown keys are errors, and
 every error names the key path and what was expected, so a typo never silently falls back to a
 default. Where the config comes from: `--config`, else `AFTERCAST_CONFIG`, else
-`./config/aftercast.yaml` when it exists, else the built-in defaults.
+`./config/aftercast.yaml` when it exists, else the built-in defaults. The sections of the stages
+come from `aftercast.settings`, which imports no stage, so every stage can import this module.
 """
 
 from __future__ import annotations
@@ -15,28 +16,25 @@ from pathlib import Path
 from typing import Any
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import Field, ValidationError, field_validator, model_validator
 
-from aftercast.alerts.config import Channels, DeliveryConfig, Routes, Rules
-from aftercast.detect.settings import BaselineConfig, BenchmarkConfig, DetectionConfig
 from aftercast.errors import ConfigError
-from aftercast.sources import SourceList
-from aftercast.web.settings import ApiConfig, ScheduleConfig, WebConfig
+from aftercast.settings.alerts import Channels, DeliveryConfig, Routes, Rules
+from aftercast.settings.base import Strict
+from aftercast.settings.detection import BaselineConfig, BenchmarkConfig, DetectionConfig
+from aftercast.settings.sources import SourceList
+from aftercast.settings.web import ApiConfig, ScheduleConfig, WebConfig
 
 DEFAULT_CONFIG_PATH = Path("config/aftercast.yaml")
 _ENV_REF = re.compile(r"\$\{([A-Za-z_][A-Za-z0-9_]*)\}")
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-class StoreConfig(_Strict):
+class StoreConfig(Strict):
     url: str = "sqlite:///aftercast.db"
     echo: bool = False
 
 
-class SeriesDefaults(_Strict):
+class SeriesDefaults(Strict):
     frequency: str = "D"
     season: int = Field(7, ge=1)
     timezone: str = "UTC"
@@ -58,7 +56,7 @@ class SeriesDefaults(_Strict):
         return value
 
 
-class SeriesEntry(_Strict):
+class SeriesEntry(Strict):
     """One series' own settings; anything left out comes from `series_defaults`."""
 
     id: str
@@ -87,7 +85,7 @@ class SeriesEntry(_Strict):
         return value
 
 
-class WindowConfig(_Strict):
+class WindowConfig(Strict):
     """A rolling window: the last `days` days of targets, or the `points` latest target periods."""
 
     name: str = "recent"
@@ -101,14 +99,12 @@ class WindowConfig(_Strict):
         return self
 
 
-class IngestConfig(_Strict):
+class IngestConfig(Strict):
     chunk_rows: int = Field(200_000, ge=1_000)
 
 
-class CoordinationConfig(BaseModel):
+class CoordinationConfig(Strict):
     """`coordination:` - how replicas sharing one store split the series between them."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
 
     shards: int = Field(16, ge=1, le=4096)
     lease_seconds: int = Field(60, ge=2)
@@ -119,7 +115,7 @@ class CoordinationConfig(BaseModel):
         return self.lease_seconds / 3
 
 
-class Config(_Strict):
+class Config(Strict):
     store: StoreConfig = StoreConfig()
     series_defaults: SeriesDefaults = SeriesDefaults()
     series: list[SeriesEntry] = Field(default_factory=list)

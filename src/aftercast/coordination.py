@@ -44,7 +44,7 @@ from aftercast.store.db import write
 
 if TYPE_CHECKING:
     from aftercast.cycle import CycleReport
-    from aftercast.sources.base import Schedule
+    from aftercast.settings.schedule import Schedule
 
 log = logging.getLogger("aftercast.coordination")
 

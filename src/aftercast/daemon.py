@@ -34,8 +34,8 @@ from aftercast.config import Config
 from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, SchemaOutdatedError
 from aftercast.logs import configure_logging, cycle_scope, log_event
+from aftercast.settings.sources import SourceSettings
 from aftercast.sources import pull
-from aftercast.sources.base import SourceSettings
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.web.app import create_app
 from aftercast.web.metrics import Metrics

@@ -12,31 +12,20 @@ from __future__ import annotations
 
 import uuid
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
 from typing import Any
 from urllib.parse import quote
 
 import pandas as pd
-from pydantic import BaseModel, ConfigDict, Field
 
 from aftercast.alerts.rules import label_frame, labels_match
-from aftercast.notify.base import AlertLine, ChartData, Notification
+from aftercast.notify.base import AlertLine, ChartData, Digest, Notification
+from aftercast.settings.alerts import RouteConfig
 
 SEVERITY_RANK = {"critical": 0, "warning": 1, "info": 2}
 # Notice kinds from the lifecycle, as the notification contract names them.
 NOTIFICATION_KIND = {"raised": "digest", "reminder": "reminder", "cleared": "cleared"}
 KIND_ORDER = ("raised", "reminder", "cleared")
 EVERY_ALERT = "all"
-
-
-class RouteConfig(BaseModel):
-    """One `routes:` entry: alerts whose labels include `match` go to `channels`."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-    name: str | None = Field(None, min_length=1, max_length=200)
-    match: dict[str, str] = Field(default_factory=dict)
-    channels: list[str] = Field(min_length=1)
 
 
 def route_names(routes: Sequence[RouteConfig]) -> list[str]:
@@ -51,19 +40,6 @@ def route_names(routes: Sequence[RouteConfig]) -> list[str]:
             name, n = f"{base}#{n}", n + 1
         names.append(name)
     return names
-
-
-def check_routes(routes: Sequence[RouteConfig], channel_names: Sequence[str]) -> None:
-    """Raise ValueError naming the first route that names a channel not configured."""
-    known = set(channel_names)
-    for index, route in enumerate(routes):
-        for channel in route.channels:
-            if channel not in known:
-                listed = ", ".join(sorted(known)) or "none"
-                raise ValueError(
-                    f"routes[{index}] names channel {channel!r}, which is not configured "
-                    f"(channels: {listed})"
-                )
 
 
 def routing_labels(
@@ -113,14 +89,6 @@ def digest_heads(routed: pd.DataFrame, cap: int, per_digest: int) -> pd.DataFram
     ordered = worst_first(routed)
     heads = ordered.groupby(["route", "channel", "kind"], sort=False).head(min(cap, per_digest))
     return heads
-
-
-@dataclass(frozen=True)
-class Digest:
-    """A notification and every alert it stands for (those left out by the cap included)."""
-
-    notification: Notification
-    alert_ids: list[int]
 
 
 def build_digests(

@@ -14,18 +14,17 @@ Evaluation is pure and vectorised over the cycle's findings, one pass per rule.
 from __future__ import annotations
 
 import fnmatch
-import re
 from collections.abc import Sequence
-from typing import Any, Literal
 
 import numpy as np
 import pandas as pd
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
-Severity = Literal["critical", "warning", "info"]
+from aftercast.settings.alerts import RuleConfig
+
 SEVERITIES: tuple[str, ...] = ("critical", "warning", "info")
 
-# What each detection means, in the words `rules check` and the messages use.
+# What each detection means, in the words `rules check` and the messages use; the keys are the
+# values `RuleConfig.detection` accepts.
 DETECTIONS: dict[str, str] = {
     "coverage_low": "prediction intervals cover fewer outcomes than their level",
     "coverage_high": "prediction intervals cover more outcomes than their level (too wide)",
@@ -35,51 +34,6 @@ DETECTIONS: dict[str, str] = {
     "actuals_overdue": "actuals for past targets have not arrived",
     "forecasts_stalled": "new forecasts have stopped arriving",
 }
-Detection = Literal[
-    "coverage_low",
-    "coverage_high",
-    "accuracy_vs_baseline",
-    "no_better_than_benchmark",
-    "bias",
-    "actuals_overdue",
-    "forecasts_stalled",
-]
-_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:-]*")
-
-
-class RuleConfig(BaseModel):
-    """One `rules:` entry; `name` defaults to the detection, which replaces that default rule."""
-
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-    name: str
-    detection: Detection
-    enabled: bool = True
-    severity: Severity | None = None  # None: the severity the detection gave the finding
-    max_p_value: float | None = Field(None, gt=0, le=1)  # on the fleet-adjusted p-value
-    min_points: int = Field(0, ge=0)
-    min_statistic: float | None = Field(None, ge=0)  # on |statistic|
-    raise_after: int = Field(1, ge=1)
-    clear_after: int = Field(1, ge=1)
-    remind_every_hours: float = Field(24.0, ge=0)  # 0: no reminders
-    match: dict[str, str] = Field(default_factory=dict)  # series labels the rule applies to
-    models: list[str] = Field(default_factory=list)  # model names or shell patterns
-    horizons: list[str] = Field(default_factory=list)  # horizon buckets, e.g. "1", "2-7"
-    labels: dict[str, str] = Field(default_factory=dict)  # added to the alert for routing
-
-    @model_validator(mode="before")
-    @classmethod
-    def _name_from_detection(cls, raw: Any) -> Any:
-        if isinstance(raw, dict) and "name" not in raw and "detection" in raw:
-            return {**raw, "name": raw["detection"]}
-        return raw
-
-    @field_validator("name")
-    @classmethod
-    def _plain_name(cls, value: str) -> str:
-        if not _NAME.fullmatch(value) or len(value) > 64:
-            raise ValueError("a rule name is letters, digits and _ . : - (at most 64)")
-        return value
 
 
 def _default(detection: str, raise_after: int, clear_after: int) -> RuleConfig:
@@ -99,21 +53,6 @@ DEFAULT_RULES: tuple[RuleConfig, ...] = (
     _default("actuals_overdue", 1, 1),
     _default("forecasts_stalled", 1, 1),
 )
-
-
-def check_unique_names(names: Sequence[str], section: str) -> None:
-    """Raise ValueError naming the first entry of `section` whose name was used before."""
-    seen: set[str] = set()
-    for index, name in enumerate(names):
-        if name in seen:
-            raise ValueError(f"{section}[{index}]: name {name!r} is used twice")
-        seen.add(name)
-
-
-def check_rule_list(rules: list[RuleConfig]) -> list[RuleConfig]:
-    """Validator for `rules:`: names are unique, so each alert's rule is unambiguous."""
-    check_unique_names([rule.name for rule in rules], "rules")
-    return rules
 
 
 def effective_rules(configured: Sequence[RuleConfig]) -> list[RuleConfig]:

@@ -23,23 +23,19 @@ from aftercast.alerts.chartdata import chart_data
 from aftercast.alerts.findings import cycle_findings
 from aftercast.alerts.lifecycle import OPEN_STATES, Advance, advance, fingerprint
 from aftercast.alerts.routing import (
-    Digest,
     assign_routes,
     build_digests,
     digest_heads,
     routing_labels,
 )
-from aftercast.alerts.rules import (
-    RuleConfig,
-    effective_rules,
-    evaluate_rules,
-    rule_parameters,
-)
+from aftercast.alerts.rules import effective_rules, evaluate_rules, rule_parameters
 from aftercast.alerts.store import load_alerts, lock_alert_stage, save_advance
 from aftercast.alerts.wording import summary_line
 from aftercast.config import Config
+from aftercast.notify.base import Digest
 from aftercast.notify.outbox import enqueue
 from aftercast.periods import to_iso
+from aftercast.settings.alerts import RuleConfig
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
 

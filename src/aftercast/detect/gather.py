@@ -15,11 +15,11 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Connection
 
-from aftercast.benchmark_methods import model_name
+from aftercast.benchmark_methods import BENCHMARK_PREFIX, model_name
 from aftercast.config import Config, WindowConfig
 from aftercast.detect.profiles import KEY, with_buckets
-from aftercast.detect.settings import BENCHMARK_PREFIX, bucket_labels
 from aftercast.periods import periods_by_series
+from aftercast.settings.detection import bucket_labels
 from aftercast.store.bulk import id_condition, is_postgres, read_frame, stage_keys
 from aftercast.store.catalog import interval_levels
 from aftercast.window_store import find_window

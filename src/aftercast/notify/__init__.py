@@ -1,34 +1,24 @@
 """Notification channels: how a rendered alert digest leaves aftercast.
 
 `base` holds the contract (`Notification` in, `DeliveryOutcome` out, `Channel.deliver` never
-raises); each other module is one channel with its own pydantic config model. The registry
-below is the only place that lists them: adding a channel is one new file and one line in
-`CHANNELS`. The config module builds its discriminated union from `CHANNEL_CONFIG_TYPES` (each
-model's `type` field is the discriminator) and turns each entry into a channel with
-`build_channel`, which also runs the checks that involve secrets (they live in the channel
-constructors because a pydantic error would quote the secret it rejects). Models holding these
-configs should set `hide_input_in_errors=True` too: pydantic takes that setting from the
-outermost model, and a mistyped key's error would otherwise quote its value.
+raises); each other module is one channel, configured by its model in
+`aftercast.settings.channels`. The registry below is the only place that lists the channels:
+adding one is its config model, one new file here and one line in `CHANNELS`. `build_channel`
+turns a validated config into its channel.
 """
 
 from __future__ import annotations
 
 from collections.abc import Mapping
-from typing import Annotated, Any, Union
+from typing import Any
 
-from pydantic import ConfigDict, Field, TypeAdapter
+from pydantic import ConfigDict, TypeAdapter
 
-from aftercast.notify.base import (
-    AlertLine,
-    Channel,
-    ChannelConfigBase,
-    ChartData,
-    DeliveryOutcome,
-    Notification,
-)
-from aftercast.notify.files import FileChannel, FileChannelConfig
-from aftercast.notify.mail import EmailChannel, EmailChannelConfig
-from aftercast.notify.webhook import WebhookChannel, WebhookChannelConfig
+from aftercast.notify.base import AlertLine, Channel, ChartData, DeliveryOutcome, Notification
+from aftercast.notify.files import FileChannel
+from aftercast.notify.mail import EmailChannel
+from aftercast.notify.webhook import WebhookChannel
+from aftercast.settings.channels import ChannelConfig, ChannelConfigBase
 
 CHANNELS: dict[str, type[Channel]] = {
     cls.type: cls
@@ -41,17 +31,14 @@ CHANNELS: dict[str, type[Channel]] = {
 CHANNEL_CONFIG_TYPES: tuple[type[ChannelConfigBase], ...] = tuple(
     cls.config_model for cls in CHANNELS.values()
 )
-# Union over a runtime tuple: pydantic reads it, type checkers see ChannelConfigBase.
-_config_adapter: TypeAdapter[Any] = TypeAdapter(
-    Annotated[Union[CHANNEL_CONFIG_TYPES], Field(discriminator="type")],  # type: ignore[arg-type]  # noqa: UP007
-    config=ConfigDict(hide_input_in_errors=True),
+_config_adapter: TypeAdapter[ChannelConfigBase] = TypeAdapter(
+    ChannelConfig, config=ConfigDict(hide_input_in_errors=True)
 )
 
 
 def parse_channel_config(raw: Mapping[str, Any]) -> ChannelConfigBase:
     """Validate one `channels:` entry into the config model its `type` names."""
-    config: ChannelConfigBase = _config_adapter.validate_python(dict(raw))
-    return config
+    return _config_adapter.validate_python(dict(raw))
 
 
 def build_channel(config: ChannelConfigBase) -> Channel:
@@ -70,16 +57,12 @@ __all__ = [
     "CHANNEL_CONFIG_TYPES",
     "AlertLine",
     "Channel",
-    "ChannelConfigBase",
     "ChartData",
     "DeliveryOutcome",
     "EmailChannel",
-    "EmailChannelConfig",
     "FileChannel",
-    "FileChannelConfig",
     "Notification",
     "WebhookChannel",
-    "WebhookChannelConfig",
     "build_channel",
     "parse_channel_config",
 ]

@@ -2,7 +2,8 @@
 
 The outbox stores a `Notification` (as JSON, via `to_json`), hands it to a channel's `deliver`
 and acts on the `DeliveryOutcome`: mark it delivered, try again later, or give up. A channel is
-a class with a `type` name and a pydantic config model; it implements `_send` and inherits a
+a class with a `type` name and a config model from `aftercast.settings.channels`; it implements
+`_send` and inherits a
 `deliver` that never raises, keeps every outcome detail on one line and scrubs the channel's
 secrets out of it before anyone (log, outbox row, status page) can see it.
 """
@@ -18,7 +19,7 @@ from abc import ABC, abstractmethod
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, SecretStr
+from aftercast.settings.channels import ChannelConfigBase
 
 log = logging.getLogger("aftercast.notify")
 
@@ -84,6 +85,15 @@ class Notification:
         return _build(cls, raw)
 
 
+@dataclass(frozen=True)
+class Digest:
+    """What the outbox enqueues: a notification and every alert it stands for (those left out
+    by the cap included), so a delivery can be traced back to its alerts."""
+
+    notification: Notification
+    alert_ids: list[int]
+
+
 def _build(cls: type, raw: dict[str, Any]) -> Any:
     # Rolling upgrades mean an older replica may read a row a newer one wrote.
     names = {f.name for f in dataclasses.fields(cls)}
@@ -128,24 +138,6 @@ class DeliveryOutcome:
         return cls("dead", detail)
 
 
-class ChannelConfigBase(BaseModel):
-    """Fields every channel config has; each channel narrows `type` to its own Literal."""
-
-    # A mistyped key ("pasword:") fails as extra, and its error must not quote the value.
-    model_config = ConfigDict(extra="forbid", frozen=True, hide_input_in_errors=True)
-
-    name: str = Field(min_length=1)
-    type: str
-
-    def secret_values(self) -> list[str]:
-        """Every secret this config holds, so outcome details can be scrubbed of them."""
-        found: list[str] = []
-        for value in self.__dict__.values():
-            items = value.values() if isinstance(value, dict) else [value]
-            found.extend(v.get_secret_value() for v in items if isinstance(v, SecretStr))
-        return [s for s in found if s]
-
-
 class Channel(ABC):
     """A way to deliver notifications; subclasses set `type`, `config_model` and `_send`."""
 
@@ -153,6 +145,7 @@ class Channel(ABC):
     config_model: ClassVar[builtins.type[ChannelConfigBase]]  # `type` is taken just above
 
     def __init__(self, config: ChannelConfigBase) -> None:
+        config.check()  # a config made in code, not read from the file, is checked here too
         self.config = config
         self.name = config.name
 

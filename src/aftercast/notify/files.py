@@ -12,20 +12,13 @@ from __future__ import annotations
 import errno
 import os
 from pathlib import Path
-from typing import Literal
 
-from aftercast.notify.base import Channel, ChannelConfigBase, DeliveryOutcome, Notification
+from aftercast.notify.base import Channel, DeliveryOutcome, Notification
 from aftercast.notify.render import render_event_json
+from aftercast.settings.channels import FileChannelConfig
 
 # Errors a retry cannot fix: the path itself is wrong or forbidden.
 PERMANENT_ERRNOS = frozenset({errno.EACCES, errno.EPERM, errno.EISDIR, errno.ENOTDIR, errno.EROFS})
-
-
-class FileChannelConfig(ChannelConfigBase):
-    """The JSON Lines file to append to; folders are created as needed."""
-
-    type: Literal["file"] = "file"
-    path: str
 
 
 class FileChannel(Channel):

@@ -18,61 +18,19 @@ import smtplib
 import ssl
 from email.message import EmailMessage
 from email.utils import formatdate, parseaddr
-from typing import Literal
 
-from pydantic import Field, SecretStr, field_validator
-
-from aftercast.notify.base import Channel, ChannelConfigBase, DeliveryOutcome, Notification
+from aftercast.notify.base import Channel, DeliveryOutcome, Notification
 from aftercast.notify.charts import render_band_chart
 from aftercast.notify.render import (
-    SUBJECT_PREFIX,
     chart_content_id,
     render_html,
     render_subject,
     render_text,
     safe_token,
 )
+from aftercast.settings.channels import EmailChannelConfig
 
 log = logging.getLogger("aftercast.notify")
-
-DEFAULT_PORTS = {"none": 25, "starttls": 587, "ssl": 465}
-
-
-class EmailChannelConfig(ChannelConfigBase):
-    """An SMTP server and who gets the mail; `port` defaults by `security` (25, 587, 465)."""
-
-    type: Literal["email"] = "email"
-    host: str = Field(min_length=1)
-    port: int | None = Field(default=None, ge=1, le=65535)
-    security: Literal["none", "starttls", "ssl"] = "starttls"
-    sender: str
-    to: list[str] = Field(min_length=1)
-    username: str | None = None
-    password: SecretStr | None = None
-    timeout_seconds: float = Field(default=10.0, gt=0)
-    ca_file: str | None = None  # extra CA bundle to trust, e.g. a company relay's own CA
-    subject_prefix: str = SUBJECT_PREFIX
-
-    @field_validator("sender")
-    @classmethod
-    def _sender_is_address(cls, value: str) -> str:
-        return _check_address(value)
-
-    @field_validator("to")
-    @classmethod
-    def _recipients_are_addresses(cls, value: list[str]) -> list[str]:
-        return [_check_address(v) for v in value]
-
-    @property
-    def smtp_port(self) -> int:
-        return self.port if self.port is not None else DEFAULT_PORTS[self.security]
-
-
-def _check_address(value: str) -> str:
-    address = parseaddr(value)[1]
-    if "@" not in address or any(c.isspace() for c in address):
-        raise ValueError(f"not an email address: {value!r}")
-    return value
 
 
 def build_message(n: Notification, config: EmailChannelConfig, pngs: list[bytes]) -> EmailMessage:
@@ -110,9 +68,6 @@ class EmailChannel(Channel):
 
     def __init__(self, config: EmailChannelConfig) -> None:
         super().__init__(config)
-        # Checked here, not by a pydantic validator, whose error would quote the password.
-        if config.password is not None and not config.username:
-            raise ValueError(f"channel {config.name!r}: password is set but username is not")
         self.email = config
 
     def _send(self, notification: Notification) -> DeliveryOutcome:

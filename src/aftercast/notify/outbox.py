@@ -23,9 +23,8 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Connection, Engine, case, func, select, update
 
-from aftercast.alerts.config import DeliveryConfig
-from aftercast.alerts.routing import Digest
-from aftercast.notify.base import DeliveryOutcome
+from aftercast.notify.base import DeliveryOutcome, Digest
+from aftercast.settings.alerts import DeliveryConfig
 from aftercast.store.bulk import allocate_ids, insert_frame, read_frame
 from aftercast.store.db import write
 from aftercast.store.schema_alerts import notification_outbox, outbox_alerts

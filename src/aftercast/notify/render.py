@@ -20,8 +20,8 @@ from urllib.parse import quote, urlsplit
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
 from aftercast.notify.base import AlertLine, Notification, jsonable
+from aftercast.settings.channels import SUBJECT_PREFIX
 
-SUBJECT_PREFIX = "[aftercast]"
 SUBJECT_MAX_CHARS = 160
 SEVERITY_RANK = {"critical": 0, "warning": 1, "info": 2}
 EVENT_TYPE_PREFIX = "org.aftercast.alert."

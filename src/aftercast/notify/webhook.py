@@ -13,50 +13,19 @@ from __future__ import annotations
 
 from datetime import UTC, datetime
 from email.utils import parsedate_to_datetime
-from typing import Literal
 from urllib.parse import urlsplit
 
 import requests
-from pydantic import Field, SecretStr, field_validator
 from standardwebhooks import Webhook
 
 import aftercast
-from aftercast.notify.base import Channel, ChannelConfigBase, DeliveryOutcome, Notification
+from aftercast.notify.base import Channel, DeliveryOutcome, Notification
 from aftercast.notify.render import render_event_json
+from aftercast.settings.channels import WebhookChannelConfig
 
 CONTENT_TYPE = "application/cloudevents+json"
 RETRY_STATUSES = frozenset({408, 425, 429})
-OWN_HEADERS = frozenset(
-    {"content-type", "content-length", "webhook-id", "webhook-timestamp", "webhook-signature"}
-)
 BODY_EXCERPT_CHARS = 120
-
-
-class WebhookChannelConfig(ChannelConfigBase):
-    """Where to POST, the signing secret ("whsec_" + base64) and any extra headers."""
-
-    type: Literal["webhook"] = "webhook"
-    url: str
-    secret: SecretStr | None = None
-    timeout_seconds: float = Field(default=10.0, gt=0)
-    headers: dict[str, SecretStr] = Field(default_factory=dict)  # may hold tokens: never shown
-    ca_file: str | None = None
-
-    @field_validator("url")
-    @classmethod
-    def _url_is_http(cls, value: str) -> str:
-        parts = urlsplit(value)
-        if parts.scheme not in ("http", "https") or not parts.hostname:
-            raise ValueError("url must be an http:// or https:// address with a host")
-        return value
-
-    def secret_values(self) -> list[str]:
-        found = super().secret_values()
-        # The bare base64 key is as secret as the prefixed form, and the credential of an
-        # "Authorization: Bearer <token>" header as secret as the whole value.
-        found += [s.removeprefix("whsec_") for s in found if s.startswith("whsec_")]
-        found += [s.split()[-1] for s in found if len(s.split()) > 1]
-        return found
 
 
 class WebhookChannel(Channel):
@@ -67,12 +36,6 @@ class WebhookChannel(Channel):
 
     def __init__(self, config: WebhookChannelConfig) -> None:
         super().__init__(config)
-        # Checked here, not by pydantic validators, whose errors would quote the secret values.
-        clashes = sorted(k for k in config.headers if k.lower() in OWN_HEADERS)
-        if clashes:
-            raise ValueError(
-                f"channel {config.name!r}: headers set by aftercast cannot be overridden: {clashes}"
-            )
         self.webhook = config
         self.signer = _signer(config)
         parts = urlsplit(config.url)

@@ -14,22 +14,10 @@ import shutil
 import time
 from collections.abc import Iterator
 from pathlib import Path
-from typing import Literal
 
-from pydantic import Field
-
-from aftercast.sources.base import Batch, Source, SourceError, SourceSettings, SourceState
+from aftercast.settings.sources import FolderSettings
+from aftercast.sources.base import Batch, Source, SourceError, SourceState
 from aftercast.sources.files import content_hash, read_chunks
-
-
-class FolderSettings(SourceSettings):
-    type: Literal["folder"] = "folder"
-    path: str
-    glob: str = "*.csv"
-    after: Literal["keep", "move"] = "keep"
-    done_folder: str | None = None  # default: <path>/done
-    failed_folder: str | None = None  # default: <path>/failed
-    settle_seconds: float = Field(5.0, ge=0)
 
 
 def _move(path: Path, folder: Path, digest: str) -> None:

@@ -17,31 +17,18 @@ import os
 import time
 from collections.abc import Iterator
 from itertools import chain
-from typing import Any, Literal
+from typing import Any
 
 import pandas as pd
 import requests
-from pydantic import Field, SecretStr
 
 from aftercast.errors import InputFileError
-from aftercast.sources.base import Batch, Source, SourceError, SourceSettings, SourceState
+from aftercast.settings.sources import HttpSettings
+from aftercast.sources.base import Batch, Source, SourceError, SourceState
 from aftercast.sources.files import Chunk
 
 RETRY_STATUSES = {408, 429, 500, 502, 503, 504}
 MAX_PAUSE_SECONDS = 60.0
-
-
-class HttpSettings(SourceSettings):
-    type: Literal["http"] = "http"
-    url: str
-    format: Literal["csv", "json", "jsonl"] = "json"
-    records_key: str | None = None  # JSON object answers: dotted path to the array of rows
-    headers: dict[str, SecretStr] = Field(default_factory=dict)  # values may be tokens
-    headers_from_env: dict[str, str] = Field(default_factory=dict)  # header -> variable name
-    timeout_seconds: float = Field(10.0, gt=0)
-    retries: int = Field(3, ge=0, le=10)
-    backoff_seconds: float = Field(1.0, ge=0)
-    max_bytes: int = Field(200_000_000, ge=1)
 
 
 def clean_records(items: list[Any]) -> list[dict[str, Any]]:

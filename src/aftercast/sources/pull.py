@@ -20,7 +20,8 @@ from sqlalchemy import Engine
 
 from aftercast.errors import InputFileError
 from aftercast.logs import current_cycle_id, cycle_scope, log_event
-from aftercast.sources.base import Batch, SourceError, SourceResult, SourceSettings
+from aftercast.settings.sources import SourceSettings
+from aftercast.sources.base import Batch, SourceError, SourceResult
 from aftercast.sources.state import StoredState, begin_pull, finish_pull, last_attempts
 
 if TYPE_CHECKING:

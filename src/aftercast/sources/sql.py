@@ -13,27 +13,15 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from datetime import datetime
-from typing import Any, Literal
+from typing import Any
 
 import pandas as pd
 from sqlalchemy import create_engine, text
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError, SQLAlchemyError
 
-from aftercast.sources.base import Batch, Source, SourceError, SourceSettings, SourceState
+from aftercast.settings.sources import SqlSettings
+from aftercast.sources.base import Batch, Source, SourceError, SourceState
 from aftercast.sources.files import Chunk
-
-DEFAULT_WATERMARK = {"forecasts": "issued_at", "actuals": "observed_at", "series": None}
-
-
-class SqlSettings(SourceSettings):
-    type: Literal["sql"] = "sql"
-    url: str
-    query: str
-    watermark_column: str | None = None  # default: issued_at (forecasts), observed_at (actuals)
-    watermark_start: int | float | str | None = "1970-01-01 00:00:00"
-
-    def column(self) -> str | None:
-        return self.watermark_column or DEFAULT_WATERMARK[self.kind]
 
 
 def encode_watermark(value: Any) -> str:

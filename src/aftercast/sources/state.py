@@ -16,7 +16,8 @@ import pandas as pd
 from sqlalchemy import Connection, Engine, select, update
 from sqlalchemy.dialects import postgresql, sqlite
 
-from aftercast.sources.base import SourceResult, SourceSettings
+from aftercast.settings.sources import SourceSettings
+from aftercast.sources.base import SourceResult
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
 from aftercast.store.schema_sources import source_files, source_runs, source_state

@@ -21,12 +21,12 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Engine, inspect, text
 
+from aftercast.benchmark_methods import BENCHMARK_PREFIX
 from aftercast.config import WindowConfig
 from aftercast.report import window_status
 from aftercast.store.bulk import read_frame
 
-BENCHMARK_PREFIX = "benchmark:"
-PREFERRED_BENCHMARK = "benchmark:seasonal-naive"
+PREFERRED_BENCHMARK = f"{BENCHMARK_PREFIX}seasonal-naive"
 # Worst first: the state a (series, model) row shows when it has several alerts.
 ALERT_ORDER = ["raised", "acknowledged", "pending", "cleared"]
 

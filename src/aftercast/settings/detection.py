@@ -1,8 +1,8 @@
 """Config sections of benchmarks, baselines and detection: `benchmarks:`, `baseline:`, `detection:`.
 
-They are plain pydantic models (strict, frozen) with no imports from the rest of aftercast, so
-`config.py` can use them as field types without an import cycle. Every key here is shown,
-commented, in `starter.yaml`.
+They are plain pydantic models (strict, frozen), and `bucket_labels` turns the root config's
+`horizon_buckets` into the buckets in force. Every key here is shown, commented, in
+`starter.yaml`.
 """
 
 from __future__ import annotations
@@ -11,20 +11,17 @@ import re
 from datetime import datetime
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import Field, field_validator, model_validator
+
+from aftercast.settings.base import Strict
 
 BenchmarkMethod = Literal["naive", "seasonal-naive"]
-BENCHMARK_PREFIX = "benchmark:"
 _ALL_METHODS: tuple[BenchmarkMethod, ...] = ("naive", "seasonal-naive")
 # Horizon buckets used when the config gives none: one hit per target within each.
 DEFAULT_BUCKETS = ("1", "2-7", "8-14", "15+")
 
 
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
-
-
-class BenchmarkConfig(_Strict):
+class BenchmarkConfig(Strict):
     """aftercast's own forecasts, made at every issue time of a production forecast."""
 
     methods: list[BenchmarkMethod] = Field(default_factory=lambda: list(_ALL_METHODS))
@@ -43,7 +40,7 @@ class BenchmarkConfig(_Strict):
         return sorted(set(value))
 
 
-class BaselineConfig(_Strict):
+class BaselineConfig(Strict):
     """The reference window of each (series, model, horizon bucket).
 
     By default the first `days` days of targets after the model's first forecast for the
@@ -65,7 +62,7 @@ class BaselineConfig(_Strict):
         return self
 
 
-class DetectionConfig(_Strict):
+class DetectionConfig(Strict):
     """Statistical tests run each cycle, and the fleet-wide false-discovery control."""
 
     false_discovery_rate: float = Field(0.05, gt=0, lt=1)

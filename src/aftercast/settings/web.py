@@ -8,16 +8,13 @@ is configured, so none can match).
 
 from __future__ import annotations
 
-from pydantic import BaseModel, ConfigDict, Field, SecretStr
+from pydantic import Field, SecretStr
 
-from aftercast.sources.base import Schedule
-
-
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True)
+from aftercast.settings.base import Strict
+from aftercast.settings.schedule import Schedule
 
 
-class ScheduleConfig(_Strict):
+class ScheduleConfig(Strict):
     """When the daemon runs the monitoring cycle and the outbox delivery."""
 
     cycle: Schedule = Schedule(interval_seconds=900)
@@ -29,7 +26,7 @@ class ScheduleConfig(_Strict):
     shutdown_grace_seconds: float = Field(20.0, gt=0, le=28)
 
 
-class ApiConfig(_Strict):
+class ApiConfig(Strict):
     """Push and write endpoints: `Authorization: Bearer <token>` and a body size limit."""
 
     token: SecretStr | None = None  # normally "${AFTERCAST_API_TOKEN}"
@@ -37,7 +34,7 @@ class ApiConfig(_Strict):
     page_limit: int = Field(1_000, ge=10, le=100_000)  # the most rows one read page returns
 
 
-class WebConfig(_Strict):
+class WebConfig(Strict):
     """Where the HTTP server listens and how alerts link back to it."""
 
     host: str = "127.0.0.1"
