@@ -27,8 +27,8 @@ from sqlalchemy import create_engine, text
 from aftercast.config import Config, parse_config
 from aftercast.cycle import run_cycle
 from aftercast.ingest import ingest_chunks
+from aftercast.ingest.files import Chunk
 from aftercast.scenario import ScenarioSpec, generate
-from aftercast.sources.files import Chunk
 from aftercast.store.db import make_engine, migrate
 
 CHUNK = 200_000

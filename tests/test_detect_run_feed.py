@@ -12,8 +12,8 @@ from sqlalchemy import Engine
 from aftercast.config import Config
 from aftercast.cycle import CycleReport, run_cycle
 from aftercast.ingest import ingest_chunks
+from aftercast.ingest.files import Chunk
 from aftercast.scenario import Scenario
-from aftercast.sources.files import Chunk
 
 
 def day_start(scenario: Scenario, day: int) -> pd.Timestamp:

@@ -23,11 +23,11 @@ from sqlalchemy import Engine
 from aftercast.cli import main
 from aftercast.config import Config, load_config
 from aftercast.ingest import ingest_chunks
+from aftercast.ingest.files import Chunk
 from aftercast.matching import match
 from aftercast.periods import parse_instant
 from aftercast.report import StatusQuery, open_status, window_status
 from aftercast.scenario import ScenarioSpec, generate
-from aftercast.sources.files import Chunk
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
 from aftercast.window_store import find_window, refresh_windows

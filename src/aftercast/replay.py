@@ -20,9 +20,9 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Engine
 
-from aftercast.baselines import load_baselines, pending_baselines
 from aftercast.benchmarks import make_benchmarks
 from aftercast.config import Config
+from aftercast.detect.baselines import load_baselines, pending_baselines
 from aftercast.detect.findings import FINDING_KEY
 from aftercast.detect.gather import window_data
 from aftercast.detect.profiles import KEY

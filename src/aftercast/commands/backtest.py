@@ -15,11 +15,11 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, T
 from rich.table import Table
 
 from aftercast.backtest import BacktestOptions, BacktestResult, run_backtest
-from aftercast.baselines import seed_from_backtest
 from aftercast.benchmark_methods import METHODS
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
 from aftercast.config import load_config
+from aftercast.detect.baselines import seed_from_backtest
 
 
 def _table(result: BacktestResult) -> Table:

@@ -13,17 +13,17 @@ import getpass
 import time
 from typing import Any
 
-from aftercast.baselines import (
+from aftercast.benchmark_methods import METHODS, model_name
+from aftercast.cli import print_json
+from aftercast.commands.core import open_store
+from aftercast.config import load_config
+from aftercast.detect.baselines import (
     baseline_rows,
     freeze_baselines,
     reset_baselines,
     resolve_keys,
     seed_from_backtest,
 )
-from aftercast.benchmark_methods import METHODS, model_name
-from aftercast.cli import print_json
-from aftercast.commands.core import open_store
-from aftercast.config import load_config
 from aftercast.detect.gather import DAY, detection_window
 from aftercast.errors import AftercastError
 from aftercast.periods import parse_instant, to_iso

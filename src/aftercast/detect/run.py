@@ -21,8 +21,8 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Engine
 
-from aftercast.baselines import load_baselines, refresh_baselines
 from aftercast.config import Config
+from aftercast.detect.baselines import load_baselines, refresh_baselines
 from aftercast.detect.coverage_checks import coverage_findings
 from aftercast.detect.families import benjamini_hochberg_by_group, two_level_fdr
 from aftercast.detect.findings import previously_flagged, store_findings

@@ -19,6 +19,7 @@ from sqlalchemy import Connection, Engine, update
 from aftercast.config import Config
 from aftercast.errors import InputFileError
 from aftercast.ingest import series as series_rows
+from aftercast.ingest.files import Chunk, content_hash, read_chunks
 from aftercast.ingest.load import Written, write_actuals, write_forecasts
 from aftercast.ingest.validate import (
     ACTUAL_REQUIRED,
@@ -29,7 +30,6 @@ from aftercast.ingest.validate import (
     extra_columns,
     require_columns,
 )
-from aftercast.sources.files import Chunk, content_hash, read_chunks
 from aftercast.store import schema
 from aftercast.store.bulk import insert_frame
 from aftercast.store.catalog import ensure_models, ensure_series

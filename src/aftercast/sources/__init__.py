@@ -1,11 +1,10 @@
 """Where rows come from besides `aftercast ingest`: pulled sources, one module per type.
 
-`files` holds the chunked file readers every path shares. `base` is the contract a source type
-keeps; `folder`, `sql` and `http` are the types, each reading the settings model of its type
-from `aftercast.settings.sources`; adding one is that model, a new module here and one line in
-`SOURCE_TYPES`. `pull_all` (the cycle's first stage) and `pull_source` (what the daemon
-schedules) live in `pull`, which is not imported here: `pull` calls into the ingest package,
-which itself imports `sources.files`.
+`base` is the contract a source type keeps; `folder`, `sql` and `http` are the types, each
+reading the settings model of its type from `aftercast.settings.sources` and handing its rows
+to the ingest package as chunks (`aftercast.ingest.files`, the readers every path shares);
+adding one is that model, a new module here and one line in `SOURCE_TYPES`. `pull_all` (the
+cycle's first stage) and `pull_source` (what the daemon schedules) live in `pull`.
 """
 
 from __future__ import annotations

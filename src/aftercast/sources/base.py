@@ -15,8 +15,8 @@ from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Protocol
 
+from aftercast.ingest.files import Chunk
 from aftercast.settings.sources import SourceSettings
-from aftercast.sources.files import Chunk
 
 
 class SourceState(Protocol):

@@ -15,9 +15,9 @@ import time
 from collections.abc import Iterator
 from pathlib import Path
 
+from aftercast.ingest.files import content_hash, read_chunks
 from aftercast.settings.sources import FolderSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
-from aftercast.sources.files import content_hash, read_chunks
 
 
 def _move(path: Path, folder: Path, digest: str) -> None:

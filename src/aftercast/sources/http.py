@@ -23,9 +23,9 @@ import pandas as pd
 import requests
 
 from aftercast.errors import InputFileError
+from aftercast.ingest.files import Chunk
 from aftercast.settings.sources import HttpSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
-from aftercast.sources.files import Chunk
 
 RETRY_STATUSES = {408, 429, 500, 502, 503, 504}
 MAX_PAUSE_SECONDS = 60.0

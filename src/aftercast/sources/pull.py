@@ -19,6 +19,7 @@ from typing import TYPE_CHECKING
 from sqlalchemy import Engine
 
 from aftercast.errors import InputFileError
+from aftercast.ingest import ingest_chunks
 from aftercast.logs import current_cycle_id, cycle_scope, log_event
 from aftercast.settings.sources import SourceSettings
 from aftercast.sources.base import Batch, SourceError, SourceResult
@@ -61,8 +62,6 @@ def _release(name: str) -> None:
 def _ingest_batch(
     engine: Engine, config: Config, name: str, kind: str, batch: Batch, result: SourceResult
 ) -> None:
-    from aftercast.ingest import ingest_chunks  # the ingest package imports sources.files
-
     label = f"{name}:{batch.label}"
     try:
         report = ingest_chunks(engine, config, kind, label, batch.chunks, batch.digest)

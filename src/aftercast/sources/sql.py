@@ -19,9 +19,9 @@ import pandas as pd
 from sqlalchemy import create_engine, text
 from sqlalchemy.exc import ArgumentError, NoSuchModuleError, SQLAlchemyError
 
+from aftercast.ingest.files import Chunk
 from aftercast.settings.sources import SqlSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
-from aftercast.sources.files import Chunk
 
 
 def encode_watermark(value: Any) -> str:
