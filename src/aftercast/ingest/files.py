@@ -17,6 +17,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
+from typing import IO
 
 import pandas as pd
 
@@ -89,16 +90,22 @@ def read_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
         yield from _jsonl_chunks(path, chunk_rows)
 
 
+def csv_reader(source: Path | IO[bytes], chunk_rows: int) -> Iterator[pd.DataFrame]:
+    """Frames of `chunk_rows` rows of a CSV file or body, every value as text (a file and a
+    pushed or pulled body are read alike)."""
+    return pd.read_csv(
+        source,
+        dtype=str,
+        keep_default_na=False,
+        chunksize=chunk_rows,
+        encoding="utf-8",
+        skipinitialspace=True,
+    )
+
+
 def _csv_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
     try:
-        reader = pd.read_csv(
-            path,
-            dtype=str,
-            keep_default_na=False,
-            chunksize=chunk_rows,
-            encoding="utf-8",
-            skipinitialspace=True,
-        )
+        reader = csv_reader(path, chunk_rows)
         first = 1
         for frame in reader:
             if frame.empty:

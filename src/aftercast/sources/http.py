@@ -23,7 +23,7 @@ import pandas as pd
 import requests
 
 from aftercast.errors import InputFileError
-from aftercast.ingest.files import Chunk
+from aftercast.ingest.files import Chunk, csv_reader
 from aftercast.settings.sources import HttpSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
 
@@ -54,14 +54,7 @@ def csv_chunks(body: bytes, chunk_rows: int, label: str) -> Iterator[Chunk]:
     An empty body yields nothing; a body that is not CSV raises InputFileError naming `label`.
     """
     try:
-        reader = pd.read_csv(
-            io.BytesIO(body),
-            dtype=str,
-            keep_default_na=False,
-            chunksize=chunk_rows,
-            encoding="utf-8",
-            skipinitialspace=True,
-        )
+        reader = csv_reader(io.BytesIO(body), chunk_rows)
         first = 1
         for frame in reader:
             yield Chunk(frame, first)
