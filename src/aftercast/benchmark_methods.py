@@ -130,10 +130,10 @@ def _past_errors(history: pd.DataFrame, needed: pd.DataFrame) -> pd.DataFrame:
     lag = np.repeat(wanted["lag"].to_numpy(np.int64), count)
     low = period.min() if len(period) else 0
     key = series * (np.int64(period.max() - low + 1) if len(period) else 1) + (period - low)
-    source = np.searchsorted(key, key[rows] - lag)
-    source = np.minimum(source, max(len(key) - 1, 0))
+    wanted_key = key[rows] - lag
+    source = np.minimum(np.searchsorted(key, wanted_key), max(len(key) - 1, 0))
     # A key below the series' first period would land in the series before it.
-    found = (period[rows] - lag >= low) & (key[source] == key[rows] - lag)
+    found = (period[rows] - lag >= low) & (key[source] == wanted_key)
     rows, lag, source = rows[found], lag[found], source[found]
     return pd.DataFrame(
         {

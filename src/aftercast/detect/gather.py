@@ -181,13 +181,13 @@ def _read_window(
     model_ids: list[int],
     series_ids: np.ndarray | None,
     columns: tuple[str, tuple[str, ...]],
+    levels: list[float],
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
     """The window's pairs of `model_ids`, bucketed, and their interval rows (each with the
     pair's key columns), read together in one range read: each level's measures joined to
     its pair in the database, or with many levels the interval rows read on their own."""
     pair_columns, measures = columns
     source = _window_source(connection, detection_window(config), now, model_ids, series_ids)
-    levels = interval_levels(connection)
     wide = len(levels) <= MAX_JOINED_LEVELS
     if wide:
         pairs = read_frame(connection, *source.select_with_levels(pair_columns, measures, levels))
@@ -238,12 +238,14 @@ def window_data(
         (is_tested, (_PAIR_COLUMNS, _HIT_MEASURES)),
         (is_reference, (_BENCHMARK_PAIR_COLUMNS, _BENCHMARK_HIT_MEASURES)),
     )
+    levels = interval_levels(connection)  # read once for both groups
     (pairs, hits), (benchmark, benchmark_hits) = (
         _read_window(
-            connection, config, now, [int(i) for i in models.index[which]], series_ids, columns
+            connection, config, now, [int(i) for i in models.index[which]], series_ids, columns,
+            levels,
         )
         for which, columns in reads
-    )
+    )  # fmt: skip
     return WindowData(pairs, hits, benchmark, benchmark_hits, models)
 
 
