@@ -29,6 +29,7 @@ from sqlalchemy import Engine, event, text
 
 from aftercast.config import load_config
 from aftercast.coordination import Coordinator, coordinated_cycle
+from aftercast.store import leases
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate, write
 from tests.conftest import make_config
@@ -67,6 +68,9 @@ def replica_main(config_path: str, clock_path: str, name: str) -> None:
     while (published := clock.read_text().strip()) != "stop":
         if published:
             coordinated_cycle(engine, config, coordinator, int(published))
+        else:  # before the first slot: stay a live member and settle on a fair share
+            coordinator.acquire()
+            coordinator.rebalance()
         deliver_due(engine, config)
         time.sleep(0.1)
     coordinator.leave()
@@ -119,6 +123,21 @@ def slot_done(engine: Engine, slot: int) -> bool:
             text("SELECT COUNT(*) FROM shard_leases WHERE cycle_now >= :s"), {"s": slot}
         ).scalar_one()
     return done == SHARDS + 1  # every shard, then the fleet-wide stages
+
+
+def shares_settled(engine: Engine) -> bool:
+    """Every replica is a live member and holds its fair share (SHARDS / REPLICAS) of shards."""
+    with engine.connect() as connection:
+        now = leases.database_now(connection)
+        if leases.live_members(connection, now) != REPLICAS:
+            return False
+        held = read_frame(
+            connection,
+            "SELECT holder, COUNT(*) AS n FROM shard_leases WHERE shard >= 0 AND expires_at > :now "
+            "GROUP BY holder",
+            {"now": now},
+        )
+    return len(held) == REPLICAS and bool((held["n"] == SHARDS // REPLICAS).all())
 
 
 def start_replicas(folder: Path, config_path: Path, clock: Path) -> list[subprocess.Popen[bytes]]:
@@ -184,6 +203,9 @@ def test_three_replicas_share_shards_survive_sigkill_and_send_once(
         names = [f"replica-{i}" for i in range(REPLICAS)]
         victim = None
         try:
+            # Slow starters (imports on a loaded machine) would otherwise find every shard taken.
+            alive = partial(check_alive, replicas, tmp_path, None)
+            wait_until(partial(shares_settled, engine), "the replicas' fair shares", 60, alive)
             slots = [s.now for s in days if s.kind == "cycle"]
             for step in days:
                 if step.kind != "cycle":

@@ -9,6 +9,12 @@ the server from taking requests, lets the job in progress finish its step (pulls
 sources and files) and exits 0; a job still running after `shutdown_grace_seconds` is abandoned
 - every stage commits in transactions, so the next run redoes what it had not committed. Each
 event is one JSON log line carrying the cycle id.
+
+On PostgreSQL, where several replicas may share the store, the cycle job is coordinated
+(`aftercast.coordination`): every `coordination.renew_seconds` it renews this replica's shard
+leases and cycles the shards it holds for the latest slot of `schedule.cycle` that they have not
+finished; the fleet-wide stages run once per slot on whichever replica finishes last. On a clean
+stop the replica hands its shards back at once. SQLite serves one process, so it cycles plainly.
 """
 
 from __future__ import annotations
@@ -28,10 +34,12 @@ from typing import Any
 import uvicorn
 from apscheduler.executors.pool import ThreadPoolExecutor
 from apscheduler.schedulers.background import BackgroundScheduler
+from apscheduler.triggers.interval import IntervalTrigger
 from sqlalchemy import Engine
 
 from aftercast.config import Config
-from aftercast.cycle import run_cycle
+from aftercast.coordination import Coordinator, coordinated_cycle
+from aftercast.cycle import CycleReport, run_cycle
 from aftercast.errors import AftercastError, SchemaOutdatedError
 from aftercast.logs import configure_logging, cycle_scope, log_event
 from aftercast.settings.sources import SourceSettings
@@ -46,8 +54,15 @@ log = logging.getLogger("aftercast.daemon")
 class Jobs:
     """The scheduled work, with a count of jobs in progress so shutdown can wait for them."""
 
-    def __init__(self, engine: Engine, config: Config, metrics: Metrics) -> None:
+    def __init__(
+        self,
+        engine: Engine,
+        config: Config,
+        metrics: Metrics,
+        coordinator: Coordinator | None = None,
+    ) -> None:
         self.engine, self.config, self.metrics = engine, config, metrics
+        self.coordinator = coordinator
         self.stop = threading.Event()
         self._running = 0
         self._idle = threading.Condition()
@@ -83,14 +98,31 @@ class Jobs:
                 return
             started = time.perf_counter()
             try:
-                report = run_cycle(self.engine, self.config)
+                reports = self._cycle_reports()
             except Exception:
                 self.metrics.record_cycle(time.perf_counter() - started, ok=False)
                 log.exception("cycle failed")
                 return
-            self.metrics.record_cycle(report.seconds, True, report.pairs_scored, report.stages)
-            with cycle_scope(report.cycle_id):
-                log_event(log, "cycle finished", **report.as_json())
+            for report in reports:
+                self.metrics.record_cycle(report.seconds, True, report.pairs_scored, report.stages)
+                with cycle_scope(report.cycle_id):
+                    log_event(log, "cycle finished", **report.as_json())
+
+    def _cycle_reports(self) -> list[CycleReport]:
+        """A plain cycle, or this replica's due shards and its turn at the fleet-wide stages."""
+        if self.coordinator is None:
+            return [run_cycle(self.engine, self.config)]
+        turn = coordinated_cycle(self.engine, self.config, self.coordinator)
+        return [r for r in (turn.shard_report, turn.fleet_report) if r is not None]
+
+    def leave(self) -> None:
+        """Hand this replica's shards back so the others need not wait for the leases to expire."""
+        if self.coordinator is None:
+            return
+        try:
+            self.coordinator.leave()
+        except Exception:  # the store is gone: the leases expire on their own
+            log.exception("could not release the shard leases")
 
     def source(self, settings: SourceSettings) -> None:
         with self._step() as go:
@@ -133,12 +165,17 @@ def build_scheduler(jobs: Jobs, config: Config) -> BackgroundScheduler:
     )
     first = datetime.now(UTC)
     cycle = config.schedule.cycle
+    if jobs.coordinator is None:
+        trigger, starts_now = cycle.trigger(), bool(cycle.interval_seconds)
+    else:  # look for due shards often; a slot is cycled once across the replicas
+        trigger = IntervalTrigger(seconds=config.coordination.renew_seconds, timezone=UTC)
+        starts_now = True
     scheduler.add_job(
         jobs.cycle,
-        cycle.trigger(),
+        trigger,
         id="cycle",
         name="monitoring cycle",
-        next_run_time=first if cycle.interval_seconds else None,
+        next_run_time=first if starts_now else None,
     )
     for settings in config.sources:
         scheduler.add_job(
@@ -203,6 +240,13 @@ def open_store(config: Config) -> Engine:
     return engine
 
 
+def replica_coordinator(engine: Engine, config: Config) -> Coordinator | None:
+    """This replica's shard leases where several replicas can share the store (PostgreSQL)."""
+    if engine.dialect.name != "postgresql":
+        return None
+    return Coordinator(engine, config.coordination)
+
+
 def check_address(host: str, port: int) -> None:
     """Fail with one line, before anything starts, when the address cannot be listened on."""
     try:
@@ -223,7 +267,8 @@ def run_daemon(config: Config, host: str | None = None, port: int | None = None)
     engine = open_store(config)
     metrics = Metrics(engine)
     pull.add_listener(metrics.record_source)
-    jobs = Jobs(engine, config, metrics)
+    coordinator = replica_coordinator(engine, config)
+    jobs = Jobs(engine, config, metrics, coordinator)
     scheduler = build_scheduler(jobs, config)
     app = create_app(engine, config, metrics=metrics, scheduler=scheduler)
     settings = uvicorn.Config(
@@ -249,6 +294,7 @@ def run_daemon(config: Config, host: str | None = None, port: int | None = None)
         port=settings.port,
         sources=[s.name for s in config.sources],
         jobs=[j.id for j in scheduler.get_jobs()],
+        replica=coordinator.name if coordinator else None,
     )
     try:
         server.run()
@@ -257,6 +303,8 @@ def run_daemon(config: Config, host: str | None = None, port: int | None = None)
         scheduler.shutdown(wait=False)
         pull.remove_listener(metrics.record_source)
     finished = jobs.wait_idle(config.schedule.shutdown_grace_seconds)
+    if finished:
+        jobs.leave()
     log_event(log, "daemon stopped", clean=finished)
     if not finished:
         # A job is still inside a stage: leave now; its open transaction rolls back.
