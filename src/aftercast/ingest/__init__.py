@@ -7,6 +7,7 @@ put in the quarantine with their row number and reason, all in one transaction p
 
 from __future__ import annotations
 
+import itertools
 import time
 from collections import Counter
 from dataclasses import dataclass, field
@@ -19,6 +20,7 @@ from sqlalchemy import Connection, Engine, update
 from aftercast.config import Config
 from aftercast.errors import InputFileError
 from aftercast.ingest import series as series_rows
+from aftercast.ingest.conflicts import find_conflicts, mark_conflicts
 from aftercast.ingest.files import Chunk, content_hash, read_chunks
 from aftercast.ingest.load import Written, write_actuals, write_forecasts
 from aftercast.ingest.validate import (
@@ -31,8 +33,8 @@ from aftercast.ingest.validate import (
     require_columns,
 )
 from aftercast.store import schema
-from aftercast.store.bulk import insert_frame
-from aftercast.store.catalog import ensure_models, ensure_series
+from aftercast.store.bulk import insert_frame, read_frame
+from aftercast.store.catalog import ensure_models, ensure_series, series_settings, settings_for
 from aftercast.store.db import write
 
 KINDS = ("forecasts", "actuals", "series")
@@ -75,15 +77,37 @@ def _reason_code(reason: str) -> str:
     return reason.split(":", 1)[0]
 
 
+def _not_yet_quarantined(
+    connection: Connection, rejected: pd.DataFrame, report: IngestReport
+) -> pd.DataFrame:
+    """The rejected rows the quarantine does not hold yet for this source: ingesting a file
+    again counts its rejections again but stores each (row, reason, raw values) once."""
+    stored = read_frame(
+        connection,
+        "SELECT row_number, reason, raw FROM quarantine WHERE kind = :kind AND source = :source "
+        "AND row_number BETWEEN :low AND :high",
+        {
+            "kind": report.kind,
+            "source": report.source,
+            "low": int(rejected["row_number"].min()),
+            "high": int(rejected["row_number"].max()),
+        },
+    )
+    if stored.empty:
+        return rejected
+    seen = pd.MultiIndex.from_frame(stored.astype({"row_number": "int64"}))
+    keys = pd.MultiIndex.from_frame(rejected[["row_number", "reason", "raw"]])
+    return rejected[~keys.isin(seen)]
+
+
 def _quarantine(
     connection: Connection, checked: Checked, report: IngestReport, batch_id: int, now: int
 ) -> None:
     rejected = checked.rejected
     if rejected.empty:
         return
-    frame = rejected.assign(
-        batch_id=batch_id, kind=report.kind, source=report.source, recorded_at=now
-    )
+    frame = _not_yet_quarantined(connection, rejected, report)
+    frame = frame.assign(batch_id=batch_id, kind=report.kind, source=report.source, recorded_at=now)
     insert_frame(
         connection,
         schema.quarantine,
@@ -137,16 +161,28 @@ def _write_chunk(
         written = series_rows.write(connection, checked, now, config.series_defaults)
     else:
         keys = frame["series_id"].astype("string").str.strip().dropna()
-        settings = ensure_series(connection, config, keys[keys != ""])
+        settings = _settings_of(connection, config, keys[keys != ""])
+        check = check_forecasts if kind == "forecasts" else check_actuals
+        checked = check(frame, chunk.first_row, settings)
+        # Only series with a row that passed are created: a rejected row leaves no trace.
+        ids = ensure_series(connection, config, checked.good["series_key"])["id"]
         if kind == "forecasts":
-            checked = check_forecasts(frame, chunk.first_row, settings)
             models = ensure_models(connection, checked.good["model"].unique())
-            written = write_forecasts(connection, checked, settings["id"], models, now)
+            written = write_forecasts(connection, checked, ids, models, now)
         else:
-            checked = check_actuals(frame, chunk.first_row, settings)
-            written = write_actuals(connection, checked, settings["id"], batch_id, now)
+            written = write_actuals(connection, checked, ids, batch_id, now)
     _quarantine(connection, checked, report, batch_id, now)
     _count(report, written)
+
+
+def _settings_of(connection: Connection, config: Config, keys: pd.Series) -> pd.DataFrame:
+    """Settings (frequency, season, time zone) of the keys, stored or as they would be created."""
+    stored = series_settings(connection, keys.unique())
+    missing = pd.Index(keys.unique()).difference(stored.index)
+    if not len(missing):
+        return stored
+    created = settings_for(config, pd.Series(missing), stored)
+    return created if stored.empty else pd.concat([stored, created])
 
 
 def _count(report: IngestReport, written: Written) -> None:
@@ -165,13 +201,25 @@ def ingest_chunks(
     now = int(time.time())
     batch_id = _start_log(engine, kind, source, digest, now)
     seen_any = False
-    for chunk in chunks:
+    try:
+        for chunk in chunks:
+            if not seen_any:
+                require_columns(chunk.frame, REQUIRED[kind], source)
+                report.ignored_columns = [
+                    c
+                    for c in extra_columns(chunk.frame, KNOWN_COLUMNS[kind])
+                    if not (kind == "series" and str(c).startswith("label_"))  # labels are read
+                ]
+                seen_any = True
+            with write(engine) as connection:
+                _write_chunk(connection, config, kind, chunk, report, batch_id, now)
+    except InputFileError as exc:
         if not seen_any:
-            require_columns(chunk.frame, REQUIRED[kind], source)
-            report.ignored_columns = extra_columns(chunk.frame, KNOWN_COLUMNS[kind])
-            seen_any = True
-        with write(engine) as connection:
-            _write_chunk(connection, config, kind, chunk, report, batch_id, now)
+            raise
+        # The file broke off after some chunks were stored: they stay, and the log says so.
+        _finish_log(engine, batch_id, report)
+        kept = report.accepted + report.revised + report.unchanged
+        raise InputFileError(f"{exc} (the {kept} rows before it were kept)") from None
     if not seen_any:
         raise InputFileError(f"{source}: the file has a header but no rows")
     _finish_log(engine, batch_id, report)
@@ -179,16 +227,25 @@ def ingest_chunks(
 
 
 def ingest_path(engine: Engine, config: Config, kind: str, path: Path) -> IngestReport:
-    """Ingest one file (CSV, Parquet or JSON Lines, by extension)."""
-    chunks = read_chunks(path, config.ingest.chunk_rows)
+    """Ingest one file (CSV, Parquet or JSON Lines, by extension).
+
+    A file longer than one chunk is read once more first, for rows that share a key with
+    another chunk's rows but disagree (`conflicts`): they are rejected like such rows within a
+    chunk, instead of the later one silently revising the earlier.
+    """
+    rows = config.ingest.chunk_rows
+    chunks = read_chunks(path, rows)
     first = next(chunks, None)
     if first is None:
         raise InputFileError(f"{path}: the file has a header but no rows")
     require_columns(first.frame, REQUIRED[kind], str(path))
+    second = next(chunks, None)
+    head = [first] if second is None else [first, second]
+    clashes = {} if second is None else find_conflicts(kind, read_chunks(path, rows))
 
     def all_chunks() -> Any:
-        yield first
-        yield from chunks
+        for chunk in itertools.chain(head, chunks):
+            yield mark_conflicts(chunk, clashes)
 
     return ingest_chunks(engine, config, kind, str(path), all_chunks(), content_hash(path))
 

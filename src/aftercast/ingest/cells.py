@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 from pandas._libs import lib
 
+from aftercast.ingest.files import PRE_REJECTED
 from aftercast.periods import parse_times
 
 # pandas keeps an all-integer column's values as integers and otherwise uses its float parse:
@@ -43,6 +44,13 @@ class Reasons:
     @property
     def bad(self) -> pd.Series:
         return self.reason.notna()
+
+
+def flag_unreadable(frame: pd.DataFrame, reasons: Reasons) -> None:
+    """Reject the rows the reader could not read as rows (a malformed line), with its reason."""
+    if PRE_REJECTED in frame.columns:
+        why = frame[PRE_REJECTED]
+        reasons.flag(why.notna(), why.astype("string"))
 
 
 def text_values(frame: pd.DataFrame, column: str) -> pd.Series:

@@ -10,15 +10,18 @@ one line naming the file.
 from __future__ import annotations
 
 import codecs
+import csv
 import hashlib
 import io
 import json
+from collections import deque
 from collections.abc import Iterator
 from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
-from typing import IO
+from typing import IO, Any
 
+import numpy as np
 import pandas as pd
 
 from aftercast.errors import InputFileError
@@ -30,6 +33,12 @@ FORMATS = {
     ".jsonl": "jsonl",
     ".ndjson": "jsonl",
 }
+
+
+# A row rejected before its cells are read (a malformed line, a line that is not a JSON object,
+# a key that disagrees with another chunk's): this column holds why, and validation rejects the
+# row with that reason.
+PRE_REJECTED = "__rejected__"
 
 
 @dataclass(frozen=True)
@@ -83,39 +92,107 @@ def read_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
     fmt = file_format(path)
     check_readable(path, fmt)
     if fmt == "csv":
-        yield from _csv_chunks(path, chunk_rows)
+        yield from _csv_file_chunks(path, chunk_rows)
     elif fmt == "parquet":
         yield from _parquet_chunks(path, chunk_rows)
     else:
         yield from _jsonl_chunks(path, chunk_rows)
 
 
-def csv_reader(source: Path | IO[bytes], chunk_rows: int) -> Iterator[pd.DataFrame]:
-    """Frames of `chunk_rows` rows of a CSV file or body, every value as text (a file and a
-    pushed or pulled body are read alike)."""
-    return pd.read_csv(
-        source,
-        dtype=str,
-        keep_default_na=False,
-        chunksize=chunk_rows,
-        encoding="utf-8",
-        skipinitialspace=True,
-    )
+def csv_chunks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterator[Chunk]:
+    """Chunks of `chunk_rows` rows of a CSV file or body, every value as text.
 
+    Files and pushed or pulled bodies are read alike. A line with too many or too few fields
+    becomes a row of its own that holds only its reason (`PRE_REJECTED`), at its place in the
+    file, so that it is quarantined with its number and every other row is kept; pandas'
+    chunked reader would instead take such a line at a chunk's start as an index column or cut
+    it short without a word. Leading spaces after a delimiter are dropped, as before.
+    """
+    import pyarrow as pa
+    from pyarrow import csv as arrow_csv
 
-def _csv_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
+    names = [name.lstrip(" ") for name in _csv_header(source, label)]
+    malformed: deque[tuple[int, str]] = deque()
+
+    def set_aside(row: Any) -> str:
+        # Physical line numbers: the header is line 1. Exact unless a quoted value spans lines.
+        fields = f"{row.actual_columns} fields, the header has {row.expected_columns}"
+        malformed.append((int(row.number) - 1, f"malformed CSV line: {fields}"))
+        return "skip"
+
     try:
-        reader = csv_reader(path, chunk_rows)
+        reader = arrow_csv.open_csv(
+            source,
+            read_options=arrow_csv.ReadOptions(
+                column_names=names, skip_rows=1, block_size=16 << 20, use_threads=False
+            ),
+            parse_options=arrow_csv.ParseOptions(
+                invalid_row_handler=set_aside, newlines_in_values=True
+            ),
+            convert_options=arrow_csv.ConvertOptions(
+                column_types={name: pa.string() for name in names}, strings_can_be_null=False
+            ),
+        )
+        held = pd.DataFrame(columns=names)
         first = 1
-        for frame in reader:
-            if frame.empty:
-                continue
-            yield Chunk(frame, first)
-            first += len(frame)
-    except pd.errors.EmptyDataError:
-        raise InputFileError(f"{path}: the file has no header row") from None
-    except pd.errors.ParserError as exc:
-        raise InputFileError(f"{path}: not a readable CSV file ({_first_line(exc)})") from None
+        for batch in reader:
+            held = pd.concat([held, _text_frame(batch)], ignore_index=True)
+            while len(held) >= chunk_rows:
+                chunk = _placed(held.iloc[:chunk_rows].reset_index(drop=True), first, malformed)
+                held = held.iloc[chunk_rows:]
+                yield chunk
+                first += len(chunk.frame)
+        if len(held) or malformed:
+            yield _placed(held.reset_index(drop=True), first, malformed, last=True)
+    except (pa.ArrowInvalid, UnicodeDecodeError) as exc:
+        raise InputFileError(f"{label}: not a readable CSV file ({_first_line(exc)})") from None
+
+
+def _csv_header(source: Path | IO[bytes], label: str) -> list[str]:
+    """The header row's names (a BOM dropped); the source is left at its start."""
+    if isinstance(source, Path):
+        with source.open("rb") as handle:
+            line = handle.readline()
+    else:
+        start = source.tell()
+        line = source.readline()
+        source.seek(start)
+    text = line.decode("utf-8", errors="replace").lstrip("\ufeff").rstrip("\r\n")
+    if not text.strip():
+        raise InputFileError(f"{label}: the file has no header row")
+    return next(csv.reader([text]))
+
+
+def _text_frame(batch: Any) -> pd.DataFrame:
+    import pyarrow as pa
+    from pyarrow import compute
+
+    columns = [compute.utf8_ltrim(column, characters=" ") for column in batch.columns]
+    return pa.RecordBatch.from_arrays(columns, names=batch.schema.names).to_pandas()
+
+
+def _placed(
+    frame: pd.DataFrame, first: int, malformed: deque[tuple[int, str]], last: bool = False
+) -> Chunk:
+    """The chunk starting at row `first`, with the malformed lines that fall inside it (and,
+    for the `last` chunk, every one left)."""
+    end, placed = first + len(frame), []
+    while malformed and (last or malformed[0][0] < end):
+        placed.append(malformed.popleft())
+        end += 1  # each malformed line pushes the chunk's last row one further
+    if not placed:
+        return Chunk(frame, first)
+    at = np.array([number - first for number, _ in placed])
+    rows = np.setdiff1d(np.arange(end - first), at)
+    reasons = pd.DataFrame({PRE_REJECTED: [reason for _, reason in placed]}, index=at)
+    combined = pd.concat([frame.set_axis(rows), reasons]).sort_index()
+    return Chunk(combined.reset_index(drop=True), first)
+
+
+def _csv_file_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
+    for chunk in csv_chunks(path, chunk_rows, str(path)):
+        if len(chunk.frame):
+            yield chunk
 
 
 def _parquet_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
@@ -161,7 +238,7 @@ def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
             value = None
         if not isinstance(value, dict):
             # Keep the row so it is quarantined with its number instead of vanishing.
-            value = {"__unparseable__": line.rstrip("\n")[:500]}
+            value = {PRE_REJECTED: f"not a JSON object: {line.rstrip()[:200]}"}
         records.append(value)
         del offset
     return pd.DataFrame.from_records(records)

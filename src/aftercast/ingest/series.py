@@ -13,7 +13,7 @@ import pandas as pd
 from sqlalchemy import Connection, text
 
 from aftercast.config import SeriesDefaults
-from aftercast.ingest.cells import Reasons, key_values
+from aftercast.ingest.cells import Reasons, flag_unreadable, key_values
 from aftercast.ingest.load import Written
 from aftercast.ingest.validate import Checked, _package
 from aftercast.periods import check_frequency, check_timezone
@@ -35,6 +35,7 @@ def _check_values(values: pd.Series, check: object, reasons: Reasons, column: st
 def check(frame: pd.DataFrame, first_row: int) -> Checked:
     frame = frame.reset_index(drop=True)
     reasons = Reasons(frame.index)
+    flag_unreadable(frame, reasons)
     key = key_values(frame, "series_id", reasons)
     good = pd.DataFrame({"key": key})
     for column in ("frequency", "timezone", "unit"):

@@ -17,7 +17,14 @@ import numpy as np
 import pandas as pd
 
 from aftercast.errors import InputFileError
-from aftercast.ingest.cells import Reasons, key_values, number_values, time_values
+from aftercast.ingest.cells import (
+    Reasons,
+    flag_unreadable,
+    key_values,
+    number_values,
+    time_values,
+)
+from aftercast.ingest.files import PRE_REJECTED
 from aftercast.periods import periods_by_series
 
 FORECAST_REQUIRED = ["series_id", "model", "issued_at", "target_at", "point"]
@@ -48,6 +55,8 @@ def require_columns(frame: pd.DataFrame, required: list[str], source: str) -> No
 
 
 def extra_columns(frame: pd.DataFrame, known: list[str]) -> list[str]:
+    """Columns the kind does not read (said once per file); the reader's own marker is not one."""
+    known = [*known, PRE_REJECTED]
     return [c for c in frame.columns if c not in known and not _BOUND.match(str(c))]
 
 
@@ -68,7 +77,9 @@ def _rejections(frame: pd.DataFrame, reasons: Reasons, first_row: int) -> pd.Dat
             "reason": reasons.reason[bad].astype(str).to_numpy(),
         }
     )
-    rejected["raw"] = _raw_json(frame.loc[bad]).to_numpy() if bad.any() else []
+    # The marker holds the reason, which is stored beside the raw values already.
+    raw = frame.loc[bad].drop(columns=PRE_REJECTED, errors="ignore")
+    rejected["raw"] = _raw_json(raw).to_numpy() if bad.any() else []
     return rejected
 
 
@@ -170,8 +181,7 @@ def check_forecasts(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame)
     """Validate a chunk of forecast rows; `settings` (frequency, timezone) is indexed by key."""
     frame = frame.reset_index(drop=True)
     reasons = Reasons(frame.index)
-    if "__unparseable__" in frame.columns:
-        reasons.flag(frame["__unparseable__"].notna(), "not a JSON object")
+    flag_unreadable(frame, reasons)
     series_key = key_values(frame, "series_id", reasons)
     model = key_values(frame, "model", reasons)
     known = settings.reindex(series_key.fillna(""))
@@ -299,8 +309,7 @@ def check_actuals(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame) -
     """Validate a chunk of actual rows; the key is (series, period of observed_at)."""
     frame = frame.reset_index(drop=True)
     reasons = Reasons(frame.index)
-    if "__unparseable__" in frame.columns:
-        reasons.flag(frame["__unparseable__"].notna(), "not a JSON object")
+    flag_unreadable(frame, reasons)
     series_key = key_values(frame, "series_id", reasons)
     known = settings.reindex(series_key.fillna(""))
     zones = pd.Series(known["timezone"].to_numpy(), index=frame.index).fillna("UTC")

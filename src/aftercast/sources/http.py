@@ -23,7 +23,8 @@ import pandas as pd
 import requests
 
 from aftercast.errors import InputFileError
-from aftercast.ingest.files import Chunk, csv_reader
+from aftercast.ingest.files import PRE_REJECTED, Chunk
+from aftercast.ingest.files import csv_chunks as read_csv_chunks
 from aftercast.settings.sources import HttpSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
 
@@ -37,7 +38,7 @@ def clean_records(items: list[Any]) -> list[dict[str, Any]]:
     rows: list[dict[str, Any]] = []
     for item in items:
         if not isinstance(item, dict):
-            rows.append({"__unparseable__": json.dumps(item)[:500]})
+            rows.append({PRE_REJECTED: f"not a JSON object: {json.dumps(item)[:200]}"})
             continue
         rows.append(
             {
@@ -53,17 +54,9 @@ def csv_chunks(body: bytes, chunk_rows: int, label: str) -> Iterator[Chunk]:
 
     An empty body yields nothing; a body that is not CSV raises InputFileError naming `label`.
     """
-    try:
-        reader = csv_reader(io.BytesIO(body), chunk_rows)
-        first = 1
-        for frame in reader:
-            yield Chunk(frame, first)
-            first += len(frame)
-    except pd.errors.EmptyDataError:
-        return
-    except (pd.errors.ParserError, UnicodeDecodeError) as exc:
-        detail = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputFileError(f"{label}: not readable CSV ({detail})") from None
+    if not body.strip():
+        return iter(())
+    return read_csv_chunks(io.BytesIO(body), chunk_rows, label)
 
 
 def _records_at(document: Any, key: str | None) -> list[Any]:

@@ -1,0 +1,109 @@
+"""Rows of one file that share a key but disagree, found across the whole file.
+
+Validation finds such rows within a chunk; a file longer than one chunk (`ingest.chunk_rows`)
+is first read once more to find the keys whose rows fall in different chunks. Every row of such
+a key is rejected, as within a chunk: neither value can be trusted over the other, and taking
+the later one as a revision would hide the producer's mistake. The scan keeps two 64-bit hashes,
+the chunk and the row number per row (28 bytes), never the rows themselves. Keys are compared
+as their stripped text (a file writes one key one way), values as numbers where they parse as
+numbers (so `5` and `5.0` agree) and as stripped text otherwise.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+
+import numpy as np
+import pandas as pd
+
+from aftercast.ingest.files import PRE_REJECTED, Chunk
+
+KEYS = {
+    "forecasts": ["series_id", "model", "issued_at", "target_at"],
+    "actuals": ["series_id", "observed_at"],
+}
+_MIX = np.uint64(0x100000001B3)  # the 64-bit FNV prime, to fold one column's hash into the next
+REASON = "same key as another row with other values"  # the reason validation gives in a chunk
+
+
+def _text_hash(values: pd.Series) -> np.ndarray:
+    # Keys repeat over a file (a few hundred series and times), so strip and hash distinct texts.
+    codes, distinct = pd.factorize(values.astype("string"), use_na_sentinel=True)
+    stripped = pd.Series(distinct, dtype="string").str.strip().fillna("").to_numpy(object)
+    hashed = pd.util.hash_array(stripped, categorize=False) if len(stripped) else stripped
+    out = np.zeros(len(values), dtype=np.uint64)
+    present = codes >= 0
+    out[present] = np.asarray(hashed, dtype=np.uint64)[codes[present]]
+    return out
+
+
+def _value_hash(values: pd.Series) -> np.ndarray:
+    numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    numbers = np.where(numbers == 0.0, 0.0, numbers)  # -0 and 0 are one value
+    hashed = numbers.view(np.uint64).copy()
+    text = np.isnan(numbers)
+    if text.any():
+        hashed[text] = _text_hash(values[text])
+    return hashed
+
+
+def _fold(frame: pd.DataFrame, columns: list[str], one: object) -> np.ndarray:
+    folded = np.zeros(len(frame), dtype=np.uint64)
+    for column in columns:
+        folded = (folded * _MIX) ^ one(frame[column])  # type: ignore[operator]
+    return folded
+
+
+def find_conflicts(kind: str, chunks: Iterable[Chunk]) -> dict[int, str]:
+    """Row number -> reason, for the rows whose key has other values in another chunk."""
+    if kind not in KEYS:
+        return {}
+    key_columns = KEYS[kind]
+    parts: list[pd.DataFrame] = []
+    for number, chunk in enumerate(chunks):
+        frame = chunk.frame
+        usable = (
+            frame[PRE_REJECTED].isna() if PRE_REJECTED in frame else pd.Series(True, frame.index)
+        )
+        frame = frame[usable.to_numpy()]
+        if frame.empty or any(c not in frame for c in key_columns):
+            continue
+        values = [c for c in frame.columns if c not in key_columns and c != PRE_REJECTED]
+        parts.append(
+            pd.DataFrame(
+                {
+                    "key": _fold(frame, key_columns, _text_hash),
+                    "value": _fold(frame, values, _value_hash),
+                    "chunk": np.int32(number),
+                    "row": np.flatnonzero(usable) + chunk.first_row,
+                }
+            )
+        )
+    if len(parts) < 2:
+        return {}
+    rows = pd.concat(parts, ignore_index=True)
+    spread = rows.groupby("key").agg(values=("value", "nunique"), chunks=("chunk", "nunique"))
+    clashing = spread.index[(spread["values"] > 1) & (spread["chunks"] > 1)]
+    found = rows[rows["key"].isin(clashing)].sort_values("row")
+    reasons: dict[int, str] = {}
+    for _, members in found.groupby("key")["row"]:
+        numbers = members.tolist()  # a handful per key; conflicts are rare
+        for row in numbers:
+            others = [str(n) for n in numbers if n != row][:10]
+            reasons[int(row)] = f"{REASON}: row {', '.join(others)}"
+    return reasons
+
+
+def mark_conflicts(chunk: Chunk, reasons: dict[int, str]) -> Chunk:
+    """The chunk with its conflicting rows set aside, so validation rejects them with `reasons`."""
+    if not reasons:
+        return chunk
+    numbers = np.arange(len(chunk.frame)) + chunk.first_row
+    hits = np.isin(numbers, np.fromiter(reasons, dtype=np.int64))
+    if not hits.any():
+        return chunk
+    frame = chunk.frame.copy()
+    if PRE_REJECTED not in frame:
+        frame[PRE_REJECTED] = pd.Series(pd.NA, index=frame.index, dtype=object)
+    frame.loc[hits, PRE_REJECTED] = [reasons[int(n)] for n in numbers[hits]]
+    return Chunk(frame, chunk.first_row)

@@ -1,0 +1,154 @@
+"""Files longer than one chunk, malformed CSV lines, and what re-ingesting leaves behind.
+
+The rules checked are the CONTRACT's (design.md, input columns): rows of one file that share a
+key but disagree are all rejected with their row numbers, wherever they sit in the file; a bad
+row is rejected with a reason while every good row is kept; re-ingesting the same rows changes
+nothing. The yardstick for the chunked paths is the same file read as one chunk, and for a
+malformed line the row numbers counted by hand. Both stores.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+from sqlalchemy import Engine, text
+
+from aftercast.config import Config
+from aftercast.ingest import ingest_path
+from aftercast.store.bulk import read_frame
+from aftercast.store.db import make_engine, migrate
+from tests.conftest import make_config
+
+ROWS = 2_500  # three chunks of 1,000 rows (the smallest chunk the config allows)
+
+
+def _actual_rows(count: int) -> list[str]:
+    days = pd.date_range("2026-01-01", periods=count, freq="h", tz="UTC")
+    return [f"s{i % 7},{day:%Y-%m-%dT%H:%M:%SZ},{i}" for i, day in enumerate(days)]
+
+
+def _write(path: Path, header: str, rows: list[str]) -> Path:
+    path.write_text("\n".join([header, *rows]) + "\n", encoding="utf-8")
+    return path
+
+
+def _quarantine(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(
+            connection, "SELECT row_number, reason FROM quarantine ORDER BY row_number, reason"
+        )
+
+
+def _actuals(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(
+            connection,
+            "SELECT s.key, a.observed_at, a.value FROM actuals a JOIN series s "
+            "ON s.id = a.series_id ORDER BY s.key, a.observed_at",
+        )
+
+
+def _with_chunks(url: str, rows: int) -> Config:
+    return make_config(url, ingest={"chunk_rows": rows}, series_defaults={"frequency": "h"})
+
+
+def test_rows_that_disagree_in_different_chunks_are_both_rejected(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    rows = _actual_rows(ROWS)
+    rows[1501] = rows[0].rsplit(",", 1)[0] + ",-99"  # row 1502: row 1's key, another value
+    rows[2204] = rows[4]  # row 2205 repeats row 5 exactly: one value, not a conflict
+    path = _write(tmp_path / "actuals.csv", "series_id,observed_at,value", rows)
+
+    report = ingest_path(engine, _with_chunks(str(config.store.url), 1_000), "actuals", path)
+
+    assert report.rejected == 2 and dict(report.rejected_reasons) == {
+        "same key as another row with other values": 2
+    }
+    quarantined = _quarantine(engine)
+    assert quarantined["row_number"].tolist() == [1, 1502]
+    assert quarantined["reason"].tolist() == [
+        "same key as another row with other values: row 1502",
+        "same key as another row with other values: row 1",
+    ]
+    stored = _actuals(engine)
+    assert len(stored) == ROWS - 2 - 1  # both conflicting rows out, the repeat stored once
+    assert -99.0 not in set(stored["value"]) and 0.0 not in set(stored["value"])
+
+
+def test_chunked_reading_rejects_what_one_chunk_rejects(config: Config, tmp_path: Path) -> None:
+    rows = _actual_rows(ROWS)
+    rows[10] = rows[3].rsplit(",", 1)[0] + ",-1"  # within the first chunk
+    rows[2100] = rows[1200].rsplit(",", 1)[0] + ",-2"  # across the second and third
+    path = _write(tmp_path / "actuals.csv", "series_id,observed_at,value", rows)
+    results = []
+    for chunk_rows in (1_000, 10_000):
+        url = f"sqlite:///{tmp_path / f'chunks-{chunk_rows}.db'}"
+        chunked = _with_chunks(url, chunk_rows)
+        engine = make_engine(url)
+        migrate(engine)
+        ingest_path(engine, chunked, "actuals", path)
+        results.append((_quarantine(engine), _actuals(engine)))
+        engine.dispose()
+    (q_small, a_small), (q_whole, a_whole) = results
+    assert q_small["row_number"].tolist() == q_whole["row_number"].tolist() == [4, 11, 1201, 2101]
+    pd.testing.assert_frame_equal(a_small, a_whole)
+
+
+def test_malformed_csv_lines_are_rejected_in_place_and_the_rest_kept(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    rows = _actual_rows(ROWS)
+    rows[1000] = rows[1000] + ",surplus"  # row 1001 starts the second chunk: one field too many
+    rows[1700] = "s1"  # row 1701: too few fields
+    path = _write(tmp_path / "actuals.csv", "series_id,observed_at,value", rows)
+
+    report = ingest_path(engine, _with_chunks(str(config.store.url), 1_000), "actuals", path)
+
+    assert report.accepted == ROWS - 2 and report.rejected == 2
+    quarantined = _quarantine(engine)
+    assert quarantined["row_number"].tolist() == [1001, 1701]
+    assert quarantined["reason"].tolist() == [
+        "malformed CSV line: 4 fields, the header has 3",
+        "malformed CSV line: 1 fields, the header has 3",
+    ]
+    # Rows around them keep their own values: nothing shifted into a neighbour's place.
+    stored = _actuals(engine).set_index("value")
+    expected = {float(i) for i in range(ROWS)} - {1000.0, 1700.0}
+    assert set(stored.index) == expected
+
+
+def test_ingesting_again_stores_no_second_quarantine_row_and_no_phantom_series(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    path = _write(
+        tmp_path / "actuals.csv",
+        "series_id,observed_at,value",
+        ["kept,2026-01-01T00:00:00Z,1", "ghost,not a time,2", "kept,2026-01-02T00:00:00Z,nan"],
+    )
+    first = ingest_path(engine, config, "actuals", path)
+    with engine.connect() as connection:
+        before = connection.execute(text("SELECT COUNT(*) FROM quarantine")).scalar_one()
+        keys = connection.execute(text("SELECT key FROM series")).scalars().all()
+    again = ingest_path(engine, config, "actuals", path)
+    with engine.connect() as connection:
+        after = connection.execute(text("SELECT COUNT(*) FROM quarantine")).scalar_one()
+    assert (first.rejected, again.rejected, again.unchanged) == (2, 2, 1)  # counted each time
+    assert before == after == 2  # but stored once
+    assert keys == ["kept"]  # a series whose only row was rejected is not created
+
+
+def test_label_columns_of_a_series_file_are_read_not_ignored(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    path = _write(
+        tmp_path / "series.csv",
+        "series_id,frequency,season,label_team,comment",
+        ["north/rye,D,7,bakers,first"],
+    )
+    report = ingest_path(engine, config, "series", path)
+    assert report.ignored_columns == ["comment"]
+    with engine.connect() as connection:
+        labels = connection.execute(text("SELECT labels FROM series")).scalar_one()
+    assert labels == '{"team": "bakers"}'
