@@ -37,8 +37,23 @@ def _text_hash(values: pd.Series) -> np.ndarray:
     return out
 
 
+def _numbers(values: pd.Series) -> np.ndarray:
+    """The values as float64, NaN where a value is not a number."""
+    if values.dtype.kind in "fiub":
+        return values.to_numpy(dtype=np.float64, na_value=np.nan)
+    import pyarrow as pa
+    from pyarrow import compute
+
+    try:  # Arrow's cast parses text in C++, several times quicker than pandas
+        text = compute.utf8_trim_whitespace(pa.array(values.to_numpy(object), type=pa.string()))
+        text = compute.if_else(compute.equal(text, ""), None, text)
+        return compute.cast(text, pa.float64()).to_numpy(zero_copy_only=False)
+    except (pa.ArrowInvalid, pa.ArrowTypeError):  # some cell is not a number: the careful way
+        return pd.to_numeric(values, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+
+
 def _value_hash(values: pd.Series) -> np.ndarray:
-    numbers = pd.to_numeric(values, errors="coerce").to_numpy(dtype=np.float64, na_value=np.nan)
+    numbers = _numbers(values)
     numbers = np.where(numbers == 0.0, 0.0, numbers)  # -0 and 0 are one value
     hashed = numbers.view(np.uint64).copy()
     text = np.isnan(numbers)
