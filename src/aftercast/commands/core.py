@@ -6,19 +6,22 @@ Handlers are thin: load the config, open the store, call the stage functions.
 from __future__ import annotations
 
 import argparse
+import json
 import sys
 from importlib import resources
 from pathlib import Path
-from typing import Any
+from typing import Any, TextIO
 
+import numpy as np
+import pandas as pd
 from sqlalchemy import Engine
 
 from aftercast.cli import EXIT_UNREADABLE, print_json
 from aftercast.config import Config, load_config
 from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, InputFileError
-from aftercast.ingest import ingest_path
-from aftercast.periods import parse_instant
+from aftercast.ingest import IngestReport, ingest_path
+from aftercast.periods import parse_instant, to_iso
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.store.queries import iter_pair_export
 
@@ -58,8 +61,11 @@ def cmd_init(args: argparse.Namespace) -> int:
         path: Path = args.write_config
         if path.exists():
             raise AftercastError(f"{path}: already exists; not overwritten")
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(starter_config_text(), encoding="utf-8")
+        try:
+            with _open_for_writing(path) as handle:
+                handle.write(starter_config_text())
+        except OSError as exc:
+            raise _cannot_write(path, exc) from None
         print(f"wrote starter config to {path}")
         return 0
     config = load_config(args.config)
@@ -72,35 +78,36 @@ def cmd_ingest(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     engine = open_store(config)
     failed = False
-    reports = []
+    files: list[dict[str, object]] = []
     for path in args.paths:
         try:
             report = ingest_path(engine, config, args.kind, path)
         except InputFileError as exc:
             print(f"aftercast: error: {exc}", file=sys.stderr)
             failed = True
+            # A file that cannot be read keeps its place in the JSON, as a report of nothing
+            # kept plus the `error` line, so one object per file has one shape either way.
+            files.append({**IngestReport(args.kind, str(path)).as_json(), "error": str(exc)})
             continue
-        reports.append(report)
-        for line in report.examples:
-            print(f"rejected: {line}", file=sys.stderr)
-        if report.ignored_columns:
-            print(
-                f"note: {path}: ignored columns {', '.join(report.ignored_columns)}",
-                file=sys.stderr,
-            )
-        if not args.json:
-            print(
-                f"{path}: {report.accepted} accepted, {report.revised} revised, "
-                f"{report.rejected} rejected, {report.unchanged} unchanged"
-            )
+        files.append(report.as_json())
+        _print_report(path, report, args.json)
     if args.json:
-        if len(reports) == 1:
-            print_json(reports[0].as_json())
-        else:
-            print_json(
-                {"files": [r.as_json() for r in reports], **_totals([r.as_json() for r in reports])}
-            )
+        # One path prints its own object (the CONTRACT's counts and `rejected_reasons`, plus
+        # `error` when it could not be read); several print each under `files` with totals.
+        print_json(files[0] if len(files) == 1 else {"files": files, **_totals(files)})
     return EXIT_UNREADABLE if failed else 0
+
+
+def _print_report(path: Path, report: IngestReport, as_json: bool) -> None:
+    for line in report.examples:
+        print(f"rejected: {line}", file=sys.stderr)
+    if report.ignored_columns:
+        print(f"note: {path}: ignored columns {', '.join(report.ignored_columns)}", file=sys.stderr)
+    if not as_json:
+        print(
+            f"{path}: {report.accepted} accepted, {report.revised} revised, "
+            f"{report.rejected} rejected, {report.unchanged} unchanged"
+        )
 
 
 def _totals(rows: list[dict[str, object]]) -> dict[str, object]:
@@ -127,28 +134,50 @@ def cmd_cycle(args: argparse.Namespace) -> int:
     return 0
 
 
+def _open_for_writing(path: Path) -> TextIO:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    return path.open("w", encoding="utf-8", newline="")
+
+
+def _cannot_write(path: Path, exc: OSError) -> AftercastError:
+    if isinstance(exc, FileExistsError):  # from mkdir: a file sits where a folder must be
+        return AftercastError(f"{path}: cannot write ({exc.filename} is a file, not a folder)")
+    return AftercastError(f"{path}: cannot write ({exc.strerror or exc})")
+
+
 def cmd_scores(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     engine = open_store(config)
     output: Path = args.output
-    output.parent.mkdir(parents=True, exist_ok=True)
     rows = 0
-    with engine.connect() as connection, output.open("w", encoding="utf-8") as handle:
-        for index, frame in enumerate(iter_pair_export(connection)):
-            from aftercast.periods import to_iso
-
-            for column in ("issued_at", "target_at"):
-                frame[column] = frame[column].map(to_iso)
-            frame = frame.drop(columns=["forecast_id", "target_period"])
-            if args.format == "csv":
-                frame.to_csv(handle, index=False, header=index == 0)
-            else:
-                handle.write(frame.to_json(orient="records", lines=True))
-                if not frame.empty:
-                    handle.write("\n")
-            rows += len(frame)
+    try:
+        with engine.connect() as connection, _open_for_writing(output) as handle:
+            for index, frame in enumerate(iter_pair_export(connection)):
+                for column in ("issued_at", "target_at"):
+                    frame[column] = frame[column].map(to_iso)
+                frame = frame.drop(columns=["forecast_id", "target_period"])
+                if args.format == "csv":
+                    frame.to_csv(handle, index=False, header=index == 0)
+                else:
+                    _write_jsonl(handle, frame)
+                rows += len(frame)
+    except OSError as exc:  # the store's errors are not OSErrors: this is the output file
+        raise _cannot_write(output, exc) from None
     print(f"wrote {rows} pairs to {output}")
     return 0
+
+
+def _write_jsonl(handle: TextIO, frame: pd.DataFrame) -> None:
+    """One JSON object per pair, missing measures as null.
+
+    The json module writes the shortest text that reads back as the same float, as the CSV
+    does; pandas' own JSON writer rounds to at most 15 decimals, so the two exports disagreed.
+    """
+    finite = frame.replace([np.inf, -np.inf], np.nan)  # JSON has no infinity; null, as before
+    values = finite.astype(object).where(finite.notna(), None)
+    for record in values.to_dict(orient="records"):
+        handle.write(json.dumps(record, separators=(",", ":")))
+        handle.write("\n")
 
 
 def cmd_demo(args: argparse.Namespace) -> int:

@@ -65,13 +65,27 @@ def content_hash(path: Path) -> str:
     return digest.hexdigest()
 
 
-def check_readable(path: Path, fmt: str) -> None:
-    """Raise InputFileError if the file is missing, empty or (for text) not UTF-8."""
+def check_is_file(path: Path) -> None:
+    """Raise InputFileError unless `path` is an existing file (a directory is not one)."""
     if not path.exists():
         raise InputFileError(f"{path}: no such file")
+    if path.is_dir():
+        raise InputFileError(f"{path}: is a directory, not a file")
+
+
+def check_readable(path: Path, fmt: str) -> None:
+    """Raise InputFileError if the file is empty, unreadable or (for text) not UTF-8."""
+    try:
+        _check_content(path, fmt)
+    except OSError as exc:  # no permission, a device that fails, a file removed meanwhile
+        raise InputFileError(f"{path}: cannot read ({exc.strerror or exc})") from None
+
+
+def _check_content(path: Path, fmt: str) -> None:
     if path.stat().st_size == 0:
         raise InputFileError(f"{path}: the file is empty")
     if fmt == "parquet":
+        path.open("rb").close()  # pyarrow would report a permission problem as a bad file
         return
     decoder = codecs.getincrementaldecoder("utf-8")()
     offset = 0
@@ -89,6 +103,7 @@ def check_readable(path: Path, fmt: str) -> None:
 
 def read_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
     """Yield the file's rows as chunks of raw values (text for CSV, as typed for the others)."""
+    check_is_file(path)  # before the type: a missing `data` is "no such file", not "no type"
     fmt = file_format(path)
     check_readable(path, fmt)
     if fmt == "csv":

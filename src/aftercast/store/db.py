@@ -18,7 +18,7 @@ from alembic.config import Config as AlembicConfig
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 from sqlalchemy import Connection, Engine, create_engine, event, make_url, text
-from sqlalchemy.exc import ArgumentError, NoSuchModuleError, OperationalError
+from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError, OperationalError
 
 from aftercast.errors import AftercastError, ConfigError, SchemaOutdatedError
 
@@ -36,7 +36,15 @@ def make_engine(url: str, echo: bool = False) -> Engine:
                 url, echo=echo, pool_pre_ping=True, connect_args=_server_args(url)
             )
     except (ArgumentError, NoSuchModuleError) as exc:
-        raise ConfigError(f"config key store.url: {exc}") from None
+        raise ConfigError(f"config key store.url: {_first_line(exc)}") from None
+    except ImportError as exc:
+        # A URL without a driver (postgresql://) means SQLAlchemy's default one, psycopg2,
+        # which aftercast does not install: say which URL form works instead.
+        raise ConfigError(
+            f"config key store.url: {url.split('://', 1)[0]}:// needs the driver "
+            f"{exc.name or 'module'}, which is not installed; "
+            "for PostgreSQL use postgresql+psycopg://..."
+        ) from None
     return engine
 
 
@@ -95,15 +103,40 @@ def _alembic_config(connection: Connection) -> AlembicConfig:
     return config
 
 
+def _first_line(exc: BaseException) -> str:
+    text = str(exc).strip()
+    return text.splitlines()[0] if text else type(exc).__name__
+
+
+def _cannot_open(engine: Engine, exc: DBAPIError) -> AftercastError:
+    # Drivers explain over several lines (psycopg adds "Is the server running..."); the
+    # first names the cause, and the command line promises one line.
+    url = engine.url.render_as_string(hide_password=True)
+    return AftercastError(f"store {url}: cannot open ({_first_line(exc.orig or exc)})")
+
+
+@contextmanager
+def _connection(engine: Engine) -> Iterator[Connection]:
+    """A connection to the store; a store that cannot be opened at all is one line naming it."""
+    try:
+        connection = engine.connect()
+    except DBAPIError as exc:  # server down, wrong credentials, bad path, not a database file
+        raise _cannot_open(engine, exc) from None
+    with connection:
+        yield connection
+
+
 def migrate(engine: Engine) -> str:
     """Create or upgrade the schema to the newest revision; returns that revision."""
+    with _connection(engine):  # pooled, so `write` below takes the same connection again
+        pass
     try:
         with write(engine) as connection:
             config = _alembic_config(connection)
             command.upgrade(config, "heads")
             return ",".join(sorted(ScriptDirectory.from_config(config).get_heads()))
-    except OperationalError as exc:
-        raise AftercastError(f"store {engine.url!r}: cannot open ({exc.orig})") from None
+    except OperationalError as exc:  # opened, but read-only or locked past the busy timeout
+        raise _cannot_open(engine, exc) from None
 
 
 def schema_revisions(engine: Engine) -> tuple[str | None, str]:
@@ -112,7 +145,7 @@ def schema_revisions(engine: Engine) -> tuple[str | None, str]:
     Revisions may branch from a common parent (independent features add their own tables);
     the store is current when it is at every head.
     """
-    with engine.connect() as connection:
+    with _connection(engine) as connection:
         heads_now = MigrationContext.configure(connection).get_current_heads()
         heads = ScriptDirectory.from_config(_alembic_config(connection)).get_heads()
     current = ",".join(sorted(heads_now)) if heads_now else None
@@ -121,10 +154,7 @@ def schema_revisions(engine: Engine) -> tuple[str | None, str]:
 
 def check_current(engine: Engine) -> None:
     """Raise SchemaOutdatedError, with the fix, unless the store is at the newest revision."""
-    try:
-        current, head = schema_revisions(engine)
-    except OperationalError as exc:
-        raise AftercastError(f"store {engine.url!r}: cannot open ({exc.orig})") from None
+    current, head = schema_revisions(engine)
     if current is None:
         raise SchemaOutdatedError(
             f"store {engine.url.render_as_string(hide_password=True)} has no aftercast schema: "

@@ -8,6 +8,7 @@ import pandas as pd
 from sqlalchemy import Connection
 
 from aftercast.store.bulk import id_condition, read_frame
+from aftercast.store.catalog import interval_levels
 
 PAIR_SELECT = (
     "SELECT p.forecast_id, s.key AS series_id, m.name AS model, p.horizon, p.issued_at, "
@@ -44,8 +45,38 @@ def quantiles_for(connection: Connection, forecast_ids: pd.Series) -> pd.DataFra
     )
 
 
-def iter_pair_export(connection: Connection, batch: int = 100_000) -> Iterator[pd.DataFrame]:
-    """All pairs with per-pair interval measures, in forecast-id order, a batch at a time."""
+INTERVAL_MEASURES = ("lower", "upper", "hit", "width", "interval_score")
+QUANTILE_MEASURES = (("value", "q_"), ("pinball", "pinball_"))
+EXPORT_BATCH = 100_000
+
+
+def export_columns(connection: Connection) -> list[str]:
+    """The measure columns of a pair export, one per level and quantile of any pair.
+
+    Fixed for the whole export, so every batch has the same columns in the same order (a
+    CSV has one header). Levels come from the `interval_levels` catalogue, which matching
+    extends in the transaction that scores a new level; a level whose pairs are all gone
+    stays listed and exports as an empty column. Quantiles have no catalogue: their
+    probabilities are read from the scored quantiles themselves.
+    """
+    from aftercast.windows import level_name
+
+    levels = [level_name(level) for level in interval_levels(connection)]
+    probs = read_frame(connection, "SELECT DISTINCT prob FROM pair_quantiles")["prob"]
+    prob_names = [level_name(prob) for prob in sorted(probs.astype(float).tolist())]
+    return [
+        *(f"{measure}_{level}" for measure in INTERVAL_MEASURES for level in levels),
+        *(f"{prefix}{prob}" for _, prefix in QUANTILE_MEASURES for prob in prob_names),
+    ]
+
+
+def iter_pair_export(connection: Connection, batch: int = EXPORT_BATCH) -> Iterator[pd.DataFrame]:
+    """All pairs with per-pair interval measures, in forecast-id order, a batch at a time.
+
+    Every batch has the columns of `PAIR_SELECT` then `export_columns`, whatever levels and
+    quantiles its own pairs have; a measure a pair lacks is missing (NaN, or NA for `hit_`).
+    """
+    columns = export_columns(connection)
     last = 0
     while True:
         frame = read_frame(
@@ -58,22 +89,31 @@ def iter_pair_export(connection: Connection, batch: int = 100_000) -> Iterator[p
         last = int(frame["forecast_id"].iloc[-1])
         intervals = intervals_for(connection, frame["forecast_id"])
         quantiles = quantiles_for(connection, frame["forecast_id"])
-        yield _widen(frame, intervals, quantiles)
+        yield _widen(frame, intervals, quantiles, columns)
 
 
-def _widen(frame: pd.DataFrame, intervals: pd.DataFrame, quantiles: pd.DataFrame) -> pd.DataFrame:
-    """One column per level and quantile measure: hit_80, width_80, interval_score_80, ..."""
+def _widen(
+    frame: pd.DataFrame, intervals: pd.DataFrame, quantiles: pd.DataFrame, columns: list[str]
+) -> pd.DataFrame:
+    """One column per level and quantile measure (hit_80, width_80, ...), exactly `columns`."""
     from aftercast.windows import level_name
 
     out = frame.set_index("forecast_id")
     if not intervals.empty:
         intervals = intervals.assign(level=intervals["level"].map(level_name))
-        for column in ("lower", "upper", "hit", "width", "interval_score"):
+        for column in INTERVAL_MEASURES:
             wide = intervals.pivot(index="forecast_id", columns="level", values=column)
             out = out.join(wide.add_prefix(f"{column}_"))
     if not quantiles.empty:
         quantiles = quantiles.assign(prob=quantiles["prob"].map(level_name))
-        for column, prefix in (("value", "q_"), ("pinball", "pinball_")):
+        for column, prefix in QUANTILE_MEASURES:
             wide = quantiles.pivot(index="forecast_id", columns="prob", values=column)
             out = out.join(wide.add_prefix(prefix))
+    unlisted = out.columns.difference([*frame.columns, *columns])
+    if len(unlisted):  # reindexing would drop them without a word
+        raise RuntimeError(f"pair measures {list(unlisted)} are not in the interval catalogue")
+    out = out.reindex(columns=[*frame.columns.drop("forecast_id"), *columns])
+    hits = [c for c in columns if c.startswith("hit_")]
+    # Whole numbers whether or not a batch has gaps (NaN would make them floats: 1 vs 1.0).
+    out[hits] = out[hits].astype("Int64")
     return out.reset_index()
