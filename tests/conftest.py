@@ -10,14 +10,17 @@ import os
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
+import yaml
 from sqlalchemy import create_engine, text
 
 from aftercast.config import Config, parse_config
 from aftercast.store.db import make_engine, migrate
 
 POSTGRES_ENV = "AFTERCAST_TEST_POSTGRES_URL"
+COMPOSE_FILE = Path(__file__).resolve().parents[1] / "deploy" / "compose.yaml"
 # The status JSON row of the CONTRACT in the shared design document, in its order.
 STATUS_CONTRACT = [
     *("series_id", "model", "horizon", "n", "me", "mae", "mse", "rmse"),
@@ -83,3 +86,10 @@ def write_csv(path: Path, header: str, *rows: str) -> Path:
     """Write a small CSV file: `header` and `rows` are comma-separated lines."""
     path.write_text("\n".join([header, *rows]) + "\n", encoding="utf-8")
     return path
+
+
+@pytest.fixture(scope="module")
+def compose() -> dict[str, Any]:
+    """deploy/compose.yaml, parsed (its one document)."""
+    (document,) = [d for d in yaml.safe_load_all(COMPOSE_FILE.read_text()) if d is not None]
+    return dict(document)

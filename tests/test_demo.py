@@ -25,6 +25,14 @@ def test_demo_runs_the_whole_job_and_leaves_its_files(
     assert main(["demo", "--folder", str(folder)]) == 0
     printed = capsys.readouterr().out
     assert str(folder / "aftercast.db") in printed
+    # The status table has rows: its clock is the scenario's end, not today.
+    status = printed.split("$ aftercast status", 1)[1].split("$ aftercast alerts", 1)[0]
+    rows = [line.split("│")[1:-1] for line in status.splitlines() if line.startswith("│")]
+    assert rows and all(cells[0].strip().startswith("shop-") for cells in rows)
+    assert all(cells[2].strip() == "all" and int(cells[3]) > 0 for cells in rows)
+    # The commands it suggests set the same clock, so they show rows too.
+    (suggested,) = [line for line in printed.splitlines() if line.startswith("try:")]
+    assert "status --now 20" in suggested
     assert (folder / "aftercast.yaml").is_file()
     engine = create_engine(f"sqlite:///{folder / 'aftercast.db'}")
     with engine.connect() as connection:
@@ -32,8 +40,14 @@ def test_demo_runs_the_whole_job_and_leaves_its_files(
         raised = connection.execute(
             text("SELECT COUNT(*) FROM alerts WHERE state <> 'pending'")
         ).scalar_one()
+        labels = connection.execute(
+            text("SELECT labels FROM series WHERE key = 'shop-001/rye'")
+        ).scalar_one()
     engine.dispose()
     assert pairs > 0 and raised > 0
+    # The config's series entry is applied on top of the series file's labels.
+    labels = json.loads(labels)
+    assert labels["pager"] == "rye-desk" and {"team", "region"} <= set(labels)
     events = [json.loads(line) for line in (folder / "alerts.jsonl").read_text().splitlines()]
     assert events
     for event in events:  # CloudEvents 1.0 required context attributes

@@ -2,9 +2,6 @@
 
 from __future__ import annotations
 
-import doctest
-import importlib
-
 import numpy as np
 import pytest
 from statsmodels.stats.multitest import multipletests
@@ -63,12 +60,3 @@ def test_invalid_pvalues_and_empty_fleets() -> None:
         benjamini_hochberg([0.5, 1.5])
     assert benjamini_hochberg([np.nan, np.nan]).rejected.tolist() == [False, False]
     assert bonferroni([]).adjusted.size == 0
-
-
-@pytest.mark.parametrize("module", ["coverage", "accuracy", "bias", "fleet"])
-def test_docstring_examples_run(module: str) -> None:
-    # The docstring examples are documentation; this keeps them true to the code.
-    failures, attempted = doctest.testmod(
-        importlib.import_module(f"aftercast.detect.{module}"), optionflags=doctest.ELLIPSIS
-    )
-    assert attempted > 0 and failures == 0

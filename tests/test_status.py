@@ -89,7 +89,15 @@ def test_json_rows_follow_the_contract(
     path, config, engine = store
     rows = _strict_json(_cli(capsys, path, "--json"))
     assert rows and all(set(CONTRACT) <= set(r) for r in rows)
-    assert {r["horizon"] for r in rows} == {1, 2, 3, "2-3", "all"}
+    # CONTRACT: horizon is an integer or "all"; the configured bucket 2-3 is not a horizon.
+    assert {r["horizon"] for r in rows} == {1, 2, 3, "all"}
+    assert not any("horizon_bucket" in r for r in rows)
+    with_buckets = _strict_json(_cli(capsys, path, "--json", "--buckets"))
+    assert with_buckets[: len(rows)] == rows
+    buckets = with_buckets[len(rows) :]
+    assert buckets and all("horizon" not in r and r["horizon_bucket"] == "2-3" for r in buckets)
+    assert all(set(CONTRACT) - {"horizon"} <= set(r) for r in buckets)
+    rows = with_buckets
     assert all(set(r["coverage"]) == {"80", "95"} for r in rows)
     # Every row against scikit-learn on the pairs of its window.
     with engine.connect() as connection:
@@ -103,7 +111,7 @@ def test_json_rows_follow_the_contract(
     pairs = pairs[(pairs["target_at"] > now - 7 * 86_400) & (pairs["target_at"] <= now)]
     for row in rows:
         mine = pairs[(pairs["series_id"] == row["series_id"]) & (pairs["model"] == row["model"])]
-        if row["horizon"] == "2-3":
+        if "horizon_bucket" in row:
             mine = mine[mine["horizon"].between(2, 3)]
         elif row["horizon"] != "all":
             mine = mine[mine["horizon"] == row["horizon"]]
@@ -149,15 +157,21 @@ def test_filters_match_fnmatch_and_labels(
     store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
 ) -> None:
     path, config, engine = store
-    everything = _strict_json(_cli(capsys, path, "--json"))
+    everything = _strict_json(_cli(capsys, path, "--json", "--buckets"))
     pattern = "shop-00[12]/*"
     got = _strict_json(
-        _cli(capsys, path, "--json", "--series", pattern, "--model", "b", "--horizon", "2-3")
+        _cli(
+            capsys,
+            path,
+            *("--json", "--buckets", "--series", pattern, "--model", "b", "--horizon", "2-3"),
+        )
     )
     want = [
         r
         for r in everything
-        if fnmatchcase(r["series_id"], pattern) and r["model"] == "b" and r["horizon"] == "2-3"
+        if fnmatchcase(r["series_id"], pattern)
+        and r["model"] == "b"
+        and r.get("horizon_bucket") == "2-3"
     ]
     assert got == want and got
     with engine.connect() as connection:
@@ -165,7 +179,7 @@ def test_filters_match_fnmatch_and_labels(
     team = {
         k: json.loads(v).get("team") for k, v in zip(labels["key"], labels["labels"], strict=True)
     }
-    got = _strict_json(_cli(capsys, path, "--json", "--label", "team=planning"))
+    got = _strict_json(_cli(capsys, path, "--json", "--buckets", "--label", "team=planning"))
     assert got == [r for r in everything if team[r["series_id"]] == "planning"] and got
 
 
@@ -196,14 +210,25 @@ def test_csv_has_the_json_values(
         assert float(line["rmse"]) == pytest.approx(row["rmse"])
         assert float(line["coverage_95"]) == pytest.approx(row["coverage"]["95"])
         assert float(line["pinball_90"]) == pytest.approx(row["pinball"]["90"])
+    assert "horizon_bucket" not in table[0]
+    rows = _strict_json(_cli(capsys, path, "--json", "--buckets"))
+    table = list(csv.DictReader(io.StringIO(_cli(capsys, path, "--csv", "--buckets"))))
+    assert [(line["horizon"], line["horizon_bucket"]) for line in table] == [
+        (str(r.get("horizon", "")), r.get("horizon_bucket", "")) for r in rows
+    ]
 
 
 def test_table_shows_worst_rows_first(
-    store: tuple[Path, Config, Engine], capsys: pytest.CaptureFixture[str]
+    store: tuple[Path, Config, Engine],
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     path, _config, _engine = store
+    monkeypatch.setenv("COLUMNS", "200")  # rich wraps cells to the terminal's width
     out = _cli(capsys, path, "--horizon", "all", "--limit", "3", "--window", "latest")
     assert "worst mase first" in out and "3 of 12 rows" in out
+    out = _cli(capsys, path, "--buckets", "--horizon", "2-3", "--limit", "0")
+    assert out.count("bucket 2-3") == 12
 
 
 def test_pages_of_one_series_give_the_same_rows(store_url: str) -> None:
@@ -238,6 +263,8 @@ def test_pages_of_one_series_give_the_same_rows(store_url: str) -> None:
         (["--label", "team"], "--label 'team': expected NAME=VALUE"),
         (["--window", "nope"], "window 'nope': no such window; configured: recent, latest"),
         (["--horizon", "soon"], "--horizon 'soon': expected a number"),
+        (["--horizon", "2-3"], "--horizon '2-3' is a horizon bucket: add --buckets"),
+        (["--buckets", "--horizon", "4-5"], "--horizon '4-5': not a configured horizon bucket"),
     ],
 )
 def test_user_errors_are_one_line(
@@ -274,7 +301,7 @@ def test_cycle_then_status_on_the_command_line(
     assert main(["--config", str(path), "status", "--json", "--now", "2026-06-10T12:00Z"]) == 0
     rows = _strict_json(capsys.readouterr().out)
     produced = {(r["series_id"], r["horizon"]) for r in rows if r["model"] == "a"}
-    assert produced == {(s, h) for s in scenario.series["series_id"] for h in (1, 2, "2-3", "all")}
+    assert produced == {(s, h) for s in scenario.series["series_id"] for h in (1, 2, "all")}
     n = {(r["series_id"], r["model"], r["horizon"]): r["n"] for r in rows}
     for series, model, horizon in n:
         if horizon == "all":  # the "all" row pools the horizons (CONTRACT)

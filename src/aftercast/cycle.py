@@ -7,6 +7,7 @@ pipeline. `run_cycle` is what `aftercast cycle` and the daemon's scheduled job c
 from __future__ import annotations
 
 import json
+import logging
 import time
 from dataclasses import asdict, dataclass, field
 from typing import Any
@@ -19,12 +20,16 @@ from aftercast.alerts.stage import update_alerts
 from aftercast.benchmarks import make_benchmarks
 from aftercast.config import Config
 from aftercast.detect.run import detect
+from aftercast.logs import log_event
 from aftercast.matching import match
 from aftercast.notify.deliver import deliver_due
 from aftercast.sources.pull import pull_all
 from aftercast.store import schema
+from aftercast.store.catalog import sync_series_entries
 from aftercast.store.db import write
 from aftercast.window_store import refresh_windows
+
+log = logging.getLogger("aftercast.cycle")
 
 
 @dataclass
@@ -82,6 +87,9 @@ def run_cycle(
 
     if fleet:
         mark = time.perf_counter()
+        # Before the sources, so rows pulled now meet the series settings the config gives.
+        for line in sync_series_entries(engine, config):
+            log_event(log, line, level=logging.WARNING)
         pull_all(engine, config, now, report.cycle_id)
         report.stages["sources"] = time.perf_counter() - mark
 

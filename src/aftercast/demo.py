@@ -25,12 +25,14 @@ from aftercast.cycle import run_cycle
 from aftercast.ingest import ingest_path
 from aftercast.periods import parse_instant
 from aftercast.scenario import Scenario, ScenarioFiles, ScenarioSpec, generate, pick_degraded, write
+from aftercast.store.catalog import all_series
 from aftercast.store.db import make_engine, migrate
 
 N_SERIES = 12
 DAYS = 70
 DEGRADE_FROM = 28
 RECOVER_FROM = 46  # the collapsed series get honest forecasts again from this day
+ENTRY_SERIES = "shop-001/rye"  # has a `series:` entry in the demo config
 
 
 @dataclass(frozen=True)
@@ -71,6 +73,10 @@ windows:
   - name: long
     days: 42
 horizon_buckets: ["1", "2-7"]
+series:
+  # Applied to the stored series at every cycle, beside the labels of the series file.
+  - id: {ENTRY_SERIES}
+    labels: {{pager: rye-desk}}
 channels:
   - name: digest-file
     type: file
@@ -132,6 +138,18 @@ def _replay_feed(console: Console, config: Config, files: ScenarioFiles) -> None
     engine.dispose()
 
 
+def _show_entry(console: Console, config: Config) -> None:
+    engine = make_engine(config.store.url)
+    with engine.connect() as connection:
+        row = all_series(connection).set_index("key").loc[ENTRY_SERIES]
+    engine.dispose()
+    labels = ", ".join(f"{name}={value}" for name, value in row["labels"].items())
+    console.print(
+        f"config entry series[0], applied by each cycle: {ENTRY_SERIES} has labels {labels} "
+        "(the series file's and the config's)"
+    )
+
+
 def _show_digests(console: Console, paths: DemoPaths) -> None:
     if not paths.digests.exists():
         console.print("no digest written")
@@ -175,14 +193,17 @@ def run_demo(folder: Path | None = None) -> int:
         "aftercast adds its own naive and seasonal naive benchmarks):"
     )
     _replay_feed(console, config, files)
+    _show_entry(console, config)
     end = (pd.Timestamp(spec.start) + pd.Timedelta(days=spec.days - 1)).date()
+    # The scenario's days are not today's: every status command here needs its clock.
+    at_end = f"{end}T23:00:00Z"
     console.rule("[bold]Status at the end, worst MASE first")
     _run(
         console,
         paths.config,
         "status",
         "--now",
-        f"{end}T23:00:00Z",
+        at_end,
         "--horizon",
         "all",
         "--limit",
@@ -210,7 +231,9 @@ def run_demo(folder: Path | None = None) -> int:
         f"digests: {paths.digests}"
     )
     console.print(
-        f"try:     aftercast --config {paths.config} status\n"
+        f"try:     aftercast --config {paths.config} status --now {at_end}\n"
+        f"         aftercast --config {paths.config} status --now {at_end} --buckets "
+        "--horizon 2-7   # per horizon bucket\n"
         f"         aftercast --config {paths.config} run   # pages on http://127.0.0.1:8080/"
     )
     console.print(f"done in {time.perf_counter() - started:.1f}s")

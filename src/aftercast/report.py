@@ -1,10 +1,12 @@
 """Status rows: window measures shaped as the CONTRACT rows, filtered, sorted, paged.
 
-A row carries `series_id` (the series key), `model`, `horizon` (an integer, a bucket such as
-"2-7", or "all"), `n, me, mae, mse, rmse, mape, smape, wape, mase`, the objects `coverage`,
-`width` and `interval_score` keyed by level ("80"), `window_start, window_end`, and extras:
-`window, mape_excluded, rmsse, tracking_signal, crps`, `pinball` keyed by quantile ("10") and
-`pit` keyed by bin ("10-50"). Undefined values are null, never NaN. `open_status` goes
+A row carries `series_id` (the series key), `model`, `horizon` (an integer, or "all"), `n, me,
+mae, mse, rmse, mape, smape, wape, mase`, the objects `coverage`, `width` and `interval_score`
+keyed by level ("80"), `window_start, window_end`, and extras: `window, mape_excluded, rmsse,
+tracking_signal, crps`, `pinball` keyed by quantile ("10") and `pit` keyed by bin ("10-50").
+Undefined values are null, never NaN. Rows of a horizon bucket are only made when asked for
+(`StatusQuery.buckets`); they carry the label in `horizon_bucket` ("2-7") and no `horizon`, so
+a reader of the CONTRACT rows can never take a bucket for a horizon. `open_status` goes
 through the series a page at a time (keyset on the key), parks each page's rows in a
 temporary table and streams them back in the chosen order, so a fleet of 100,000 series is
 never in memory at once.
@@ -29,7 +31,7 @@ from aftercast.config import WindowConfig
 from aftercast.periods import to_iso
 from aftercast.store.bulk import insert_frame
 from aftercast.window_store import is_current, rows_for_page, series_pages
-from aftercast.windows import horizon_rank, measure_columns
+from aftercast.windows import ALL, horizon_rank, measure_columns
 
 MEASURES = ["n", "me", "mae", "mse", "rmse", "mape", "smape", "wape", "mase"]
 EXTRAS = ["mape_excluded", "rmsse", "tracking_signal", "crps"]
@@ -59,6 +61,7 @@ _STATUS_TABLE = Table(
     Column("series_key", Text),
     Column("model", Text),
     Column("horizon_rank", BigInteger),
+    Column("bucket_row", BigInteger),
     Column("body", Text),
 )
 
@@ -77,6 +80,13 @@ def _iso(value: Any) -> Any:
     return value if value is None or isinstance(value, str) else to_iso(int(value))
 
 
+def is_bucket(horizon: pd.Series) -> np.ndarray:
+    """True where a horizon label names a bucket ("2-7"), not a horizon (3) nor "all"."""
+    # Labels are a handful of distinct values (1 and "1" stay apart): test those, map the rows.
+    kinds = {label: isinstance(label, str) and label != ALL for label in horizon.unique()}
+    return horizon.map(kinds).to_numpy(bool)
+
+
 def status_json(rows: pd.DataFrame) -> list[dict[str, Any]]:
     """CONTRACT rows from window rows whose `series_id` is the series key, nulls for NaN.
 
@@ -93,7 +103,10 @@ def status_json(rows: pd.DataFrame) -> list[dict[str, Any]]:
     for record, index in zip(plain.to_dict("records"), rows.index, strict=True):
         row = {k: _clean(v) for k, v in record.items()}
         horizon = row["horizon"]
-        row["horizon"] = horizon if isinstance(horizon, str) else int(horizon)
+        if isinstance(horizon, str) and horizon != ALL:  # a bucket label is not a horizon
+            row = {("horizon_bucket" if k == "horizon" else k): v for k, v in row.items()}
+        elif horizon != ALL:
+            row["horizon"] = int(horizon)
         row["n"] = int(row["n"])
         if row.get("mape_excluded") is not None:
             row["mape_excluded"] = int(row["mape_excluded"])
@@ -136,7 +149,8 @@ class StatusQuery:
 
     window: WindowConfig
     now: int
-    buckets: tuple[str, ...] = ()
+    buckets: tuple[str, ...] = ()  # labels of the bucket rows to add; none by default
+    buckets_last: bool = False  # all CONTRACT rows first, then the bucket rows
     sort: str = "key"
     series: str | None = None  # shell pattern on the series key: 'shop-01*/rye'
     model: str | None = None
@@ -207,6 +221,7 @@ def _park(connection: Connection, rows: pd.DataFrame, query: StatusQuery) -> dic
             "series_key": named["series_id"].to_numpy(),
             "model": named["model"].to_numpy(),
             "horizon_rank": horizon_rank(named["horizon"]).to_numpy(),
+            "bucket_row": is_bucket(named["horizon"]).astype(np.int64),
             "body": [json.dumps(r, separators=(",", ":")) for r in records],
         }
     )
@@ -215,20 +230,22 @@ def _park(connection: Connection, rows: pd.DataFrame, query: StatusQuery) -> dic
 
 
 def _create_parking(connection: Connection) -> None:
-    columns = "sort_value DOUBLE PRECISION, series_key TEXT, model TEXT, horizon_rank BIGINT, "
-    connection.execute(
-        text(f"CREATE TEMP TABLE IF NOT EXISTS {_STATUS_TABLE.name} ({columns}body TEXT)")
+    columns = (
+        "sort_value DOUBLE PRECISION, series_key TEXT, model TEXT, horizon_rank BIGINT, "
+        "bucket_row BIGINT, body TEXT"
     )
+    connection.execute(text(f"CREATE TEMP TABLE IF NOT EXISTS {_STATUS_TABLE.name} ({columns})"))
     connection.execute(text(f"DELETE FROM {_STATUS_TABLE.name}"))
 
 
-def _stream(connection: Connection, limit: int | None) -> Iterator[dict[str, Any]]:
+def _stream(connection: Connection, query: StatusQuery) -> Iterator[dict[str, Any]]:
+    first = "bucket_row, " if query.buckets_last else ""
     sql = (
-        f"SELECT body FROM {_STATUS_TABLE.name} ORDER BY (sort_value IS NULL), sort_value DESC, "
-        "series_key, model, horizon_rank"
+        f"SELECT body FROM {_STATUS_TABLE.name} ORDER BY {first}(sort_value IS NULL), "
+        "sort_value DESC, series_key, model, horizon_rank"
     )
-    if limit is not None:
-        sql += f" LIMIT {int(limit)}"
+    if query.limit is not None:
+        sql += f" LIMIT {int(query.limit)}"
     result = connection.execution_options(stream_results=True).execute(text(sql))
     for batch in result.partitions(1_000):
         for (body,) in batch:
@@ -262,4 +279,4 @@ def open_status(
                 for measure, seen in _park(connection, rows, query).items():
                     names[measure] |= seen
         ordered = {m: sorted(v, key=_name_order) for m, v in names.items()}
-        yield StatusResult(total, ordered, _stream(connection, query.limit))
+        yield StatusResult(total, ordered, _stream(connection, query))

@@ -22,6 +22,7 @@ from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, InputFileError
 from aftercast.ingest import IngestReport, ingest_path
 from aftercast.periods import parse_instant, to_iso
+from aftercast.store.catalog import sync_series_entries
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.store.queries import iter_pair_export
 
@@ -69,7 +70,10 @@ def cmd_init(args: argparse.Namespace) -> int:
         print(f"wrote starter config to {path}")
         return 0
     config = load_config(args.config)
-    revision = migrate(_engine(config))
+    engine = _engine(config)
+    revision = migrate(engine)
+    for line in sync_series_entries(engine, config):  # the config's `series:` entries win
+        print(f"aftercast: warning: {line}", file=sys.stderr)
     print(f"store ready at schema revision {revision}")
     return 0
 

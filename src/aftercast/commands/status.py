@@ -3,9 +3,12 @@
 The table (rich) shows the worst rows first by the measure given with `--sort` (MASE unless
 told otherwise) and stops after `--limit` rows (50); `--json` prints the CONTRACT rows as one
 JSON array and `--csv` one flat row per line, both all rows in key order unless `--sort` or
-`--limit` say otherwise. Filters: `--series` (shell pattern on the series key), `--model`,
-`--horizon` (3, 2-7 or all), `--label name=value` (repeatable). Rows are read and written a
-page at a time, so the output can be as long as the fleet.
+`--limit` say otherwise. Rows per configured horizon bucket come only with `--buckets`: the
+CONTRACT promises an integer or "all" in `horizon`, so in JSON and CSV a bucket row carries its
+label in `horizon_bucket` instead, after all the CONTRACT rows. Filters: `--series` (shell
+pattern on the series key), `--model`, `--horizon` (3, all, or with `--buckets` a bucket such
+as 2-7), `--label name=value` (repeatable). Rows are read and written a page at a time, so the
+output can be as long as the fleet.
 """
 
 from __future__ import annotations
@@ -51,12 +54,20 @@ def _labels(values: list[str] | None) -> tuple[tuple[str, str], ...]:
     return tuple(pairs)
 
 
-def _horizon(value: str | None) -> str | None:
+def _horizon(value: str | None, buckets: tuple[str, ...] | None) -> str | None:
+    """The --horizon filter; a bucket label only with --buckets (`buckets` None without)."""
     if value is None or value == "all":
         return value
     low, _, high = value.partition("-")
     if not low.isdigit() or (high and not high.isdigit()):
         raise AftercastError(f"--horizon {value!r}: expected a number, a range like 2-7, or all")
+    if high and buckets is None:
+        raise AftercastError(f"--horizon {value!r} is a horizon bucket: add --buckets")
+    if high and value not in (buckets or ()):
+        configured = ", ".join(buckets or ()) or "none"
+        raise AftercastError(
+            f"--horizon {value!r}: not a configured horizon bucket (horizon_buckets: {configured})"
+        )
     return value
 
 
@@ -65,14 +76,17 @@ def cmd_status(args: argparse.Namespace) -> int:
     engine = open_store(config)
     table = not (args.json or args.csv)
     limit = args.limit if args.limit is not None else (TABLE_LIMIT if table else None)
+    buckets = tuple(config.horizon_buckets) if args.buckets else None
     query = StatusQuery(
         window=find_window(config, args.window),
         now=_clock(args.now),
-        buckets=tuple(config.horizon_buckets),
+        buckets=buckets or (),
+        # The table is read worst first; machine output keeps the CONTRACT rows together.
+        buckets_last=not table,
         sort=args.sort or ("mase" if table else "key"),
         series=args.series,
         model=args.model,
-        horizon=_horizon(args.horizon),
+        horizon=_horizon(args.horizon, buckets),
         labels=_labels(args.label),
         limit=limit or None,
     )
@@ -80,7 +94,7 @@ def cmd_status(args: argparse.Namespace) -> int:
         if args.json:
             _write_json(result.rows)
         elif args.csv:
-            _write_csv(result.rows, result.names)
+            _write_csv(result.rows, result.names, bool(buckets))
         else:
             print_status_table(list(result.rows), total=result.total, sort=query.sort)
     return 0
@@ -94,8 +108,9 @@ def _write_json(rows: Iterable[dict[str, Any]]) -> None:
     out.write("]\n")
 
 
-def _write_csv(rows: Iterable[dict[str, Any]], names: dict[str, list[str]]) -> None:
-    header = [*FLAT_FIELDS, *MEASURES, *EXTRAS]
+def _write_csv(rows: Iterable[dict[str, Any]], names: dict[str, list[str]], buckets: bool) -> None:
+    flat_fields = [*FLAT_FIELDS[:3], "horizon_bucket", *FLAT_FIELDS[3:]] if buckets else FLAT_FIELDS
+    header = [*flat_fields, *MEASURES, *EXTRAS]
     header += [f"{m}_{name}" for m in NESTED for name in names.get(m, [])]
     writer = csv.DictWriter(sys.stdout, fieldnames=header, extrasaction="ignore")
     writer.writeheader()
@@ -124,7 +139,7 @@ def print_status_table(
         table.add_row(
             str(r["series_id"]),
             str(r["model"]),
-            str(r["horizon"]),
+            str(r["horizon"]) if "horizon" in r else f"bucket {r['horizon_bucket']}",
             str(r["n"]),
             _fmt(r["me"]),
             _fmt(r["mae"]),
@@ -154,7 +169,14 @@ def register(commands: Any) -> None:
     )
     status.add_argument("--series", metavar="PATTERN", help="series keys matching a shell pattern")
     status.add_argument("--model", help="only this model")
-    status.add_argument("--horizon", help="only this horizon: 3, a bucket such as 2-7, or all")
+    status.add_argument(
+        "--buckets",
+        action="store_true",
+        help="add the rows of the configured horizon_buckets (JSON, CSV: key horizon_bucket)",
+    )
+    status.add_argument(
+        "--horizon", help="only this horizon: 3, all, or with --buckets a bucket such as 2-7"
+    )
     status.add_argument(
         "--label",
         action="append",

@@ -1,8 +1,10 @@
 """Series and models: surrogate ids and per-series settings.
 
-A series first seen in forecasts or actuals is created with `series_defaults`; `ingest series`
-and the config's `series:` entries set frequency, season, time zone, unit and labels. Lookups
-are by set (one query per chunk), never per row.
+A series first seen in forecasts or actuals is created with its `series:` entry, else
+`series_defaults`; `ingest series` sets frequency, season, time zone, unit and labels. The
+config's entries stay authoritative for series already stored (`sync_series_entries`, at `init`
+and at the start of every cycle), within what the stored data allows. Lookups are by set (one
+query per chunk), never per row.
 """
 
 from __future__ import annotations
@@ -10,15 +12,20 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Iterable
+from typing import Any
 
 import pandas as pd
-from sqlalchemy import Connection, select, text
+from sqlalchemy import Connection, Engine, bindparam, select, text
 
-from aftercast.config import Config
+from aftercast.config import Config, SeriesEntry
 from aftercast.store import schema
 from aftercast.store.bulk import insert_frame, read_frame
+from aftercast.store.db import write
 
 SETTINGS = ["frequency", "season", "timezone", "unit"]
+# What decides the period each stored time falls in and the seasonal scale of every pair: fixed
+# once a series holds forecasts or actuals, as `ingest series` also has it for its own rows.
+PERIOD_SETTINGS = ["frequency", "season", "timezone"]
 
 
 def series_settings(connection: Connection, keys: Iterable[str]) -> pd.DataFrame:
@@ -116,3 +123,82 @@ def register_levels(connection: Connection, levels: Iterable[float]) -> None:
             text("INSERT INTO interval_levels (level) VALUES (:level) ON CONFLICT DO NOTHING"),
             [{"level": level} for level in new],
         )
+
+
+def sync_series_entries(engine: Engine, config: Config) -> list[str]:
+    """Apply the config's `series:` entries to the series already stored; warning lines back.
+
+    Unit and labels follow the entry (labels it does not name, say from a series file, stay).
+    Frequency, season and time zone follow it while the series holds no forecasts and no
+    actuals; otherwise the stored value stays and a line names the entry's config key. Series
+    not stored yet are left to `ensure_series`, which creates them from their entry.
+    """
+    if not config.series:
+        return []  # the usual config: no transaction at all
+    with write(engine) as connection:
+        return _apply_entries(connection, config, int(time.time()))
+
+
+def _apply_entries(connection: Connection, config: Config, now: int) -> list[str]:
+    # A key listed twice: the later entry wins, as in `ensure_series`.
+    entries = {e.id: (index, e) for index, e in enumerate(config.series)}
+    stored = series_settings(connection, list(entries))
+    if stored.empty:
+        return []
+    rows = {str(k): _plain(r) for k, r in stored.to_dict("index").items()}
+    moves = {key: _period_moves(entries[key][1], row) for key, row in rows.items()}
+    held = _holding_data(connection, [rows[key]["id"] for key, move in moves.items() if move])
+    warnings, updates = [], []
+    for key, row in rows.items():
+        index, entry = entries[key]
+        wanted = {**row, "labels": {**json.loads(row["labels"]), **entry.labels}}
+        if entry.unit is not None:
+            wanted["unit"] = entry.unit
+        for name, value in moves[key].items():
+            if row["id"] not in held:
+                wanted[name] = value
+                continue
+            warnings.append(
+                f"series[{index}].{name}: series {key!r} is stored with {row[name]!r} and has "
+                f"data; {value!r} is not applied (a series with forecasts or actuals keeps its "
+                "periods and season)"
+            )
+        wanted["labels"] = json.dumps(wanted["labels"])
+        columns = ["id", *SETTINGS, "labels"]
+        if any(wanted[c] != row[c] for c in columns):
+            updates.append({**{c: wanted[c] for c in columns}, "updated_at": now})
+    if updates:
+        connection.execute(
+            text(
+                "UPDATE series SET frequency = :frequency, season = :season, "
+                "timezone = :timezone, unit = :unit, labels = :labels, updated_at = :updated_at "
+                "WHERE id = :id"
+            ),
+            updates,
+        )
+    return warnings
+
+
+def _plain(row: dict[str, Any]) -> dict[str, Any]:
+    """A stored row with Python values (numpy scalars would print as np.int64(7))."""
+    return {
+        k: (None if pd.isna(v) else v.item() if hasattr(v, "item") else v) for k, v in row.items()
+    }
+
+
+def _period_moves(entry: SeriesEntry, row: dict[str, Any]) -> dict[str, Any]:
+    """The period settings an entry gives that differ from the stored row."""
+    wanted = {name: getattr(entry, name) for name in PERIOD_SETTINGS}
+    return {k: v for k, v in wanted.items() if v is not None and v != row[k]}
+
+
+def _holding_data(connection: Connection, ids: list[int]) -> set[int]:
+    """Those of `ids` whose series hold forecasts or actuals (one indexed probe each)."""
+    if not ids:
+        return set()
+    query = text(
+        "SELECT s.id FROM series s WHERE s.id IN :ids AND ("
+        "EXISTS (SELECT 1 FROM forecasts f WHERE f.series_id = s.id) OR "
+        "EXISTS (SELECT 1 FROM actuals a WHERE a.series_id = s.id))"
+    ).bindparams(bindparam("ids", expanding=True))
+    return {int(i) for i in connection.execute(query, {"ids": ids}).scalars()}
