@@ -269,3 +269,30 @@ def test_secret_header_values_never_print() -> None:
         }
     )
     assert "hunter2" not in repr(config) and "hunter2" not in str(config.sources[0])
+
+
+@pytest.mark.postgres
+def test_another_replica_pulling_a_source_makes_this_one_skip_it(
+    pg_url: str, tmp_path: Path
+) -> None:
+    """PostgreSQL's own lock table is the yardstick: while another session holds the source's
+    advisory lock (a replica mid-pull), this process skips the source; afterwards it pulls."""
+    from aftercast.sources.state import _lock_key
+
+    engine = make_engine(pg_url)
+    migrate(engine)
+    drop = tmp_path / "drop"
+    drop.mkdir()
+    write_csv(drop / "a.csv", ACTUAL_HEADER, "s1,2026-01-01,10")
+    config = _config(engine, _folder(drop))
+    with engine.connect() as other:  # the other replica, mid-pull
+        other.execute(text("SELECT pg_advisory_lock(:k)"), {"k": _lock_key("drop")})
+        assert pull_source(engine, config, config.sources[0]) is None
+        assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 0
+        other.execute(text("SELECT pg_advisory_unlock(:k)"), {"k": _lock_key("drop")})
+    result = pull_source(engine, config, config.sources[0])
+    assert result is not None and result.ok
+    assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 1
+    # The pull gave its lock back: nobody holds an advisory lock any more.
+    assert _scalar(engine, "SELECT COUNT(*) FROM pg_locks WHERE locktype = 'advisory'") == 0
+    engine.dispose()

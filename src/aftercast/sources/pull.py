@@ -4,8 +4,9 @@
 per source. A source that fails - unreachable, timing out, a bad query, even an unexpected bug -
 is logged, counted and remembered (`source_state`), and the next source is pulled all the same.
 Within a pull, a file that cannot be read is that batch's failure, not the source's. A source
-already being pulled in this process (the daemon's own schedule and a cycle meeting) is skipped
-rather than read twice at once. Listeners (the daemon's metrics) hear of every result.
+already being pulled in this process (the daemon's own schedule and a cycle meeting), or on
+PostgreSQL by another replica (an advisory lock per source), is skipped rather than read twice
+at once. Listeners (the daemon's metrics) hear of every result.
 """
 
 from __future__ import annotations
@@ -23,7 +24,13 @@ from aftercast.ingest import ingest_chunks
 from aftercast.logs import current_cycle_id, cycle_scope, log_event
 from aftercast.settings.sources import SourceSettings
 from aftercast.sources.base import Batch, SourceError, SourceResult
-from aftercast.sources.state import StoredState, begin_pull, finish_pull, last_attempts
+from aftercast.sources.state import (
+    StoredState,
+    begin_pull,
+    finish_pull,
+    last_attempts,
+    store_claim,
+)
 
 if TYPE_CHECKING:
     from aftercast.config import Config
@@ -104,12 +111,14 @@ def pull_source(
     now: int | None = None,
     cycle_id: int | None = None,
 ) -> SourceResult | None:
-    """Pull one source now; None when this process is already pulling it."""
+    """Pull one source now; None when this process, or another replica, is already pulling it."""
     if not _claim(settings.name):
         return None
     cycle_id = current_cycle_id() if cycle_id is None else cycle_id
     try:
-        with cycle_scope(cycle_id):
+        with store_claim(engine, settings.name) as mine, cycle_scope(cycle_id):
+            if not mine:
+                return None
             started = int(time.time()) if now is None else now
             clock = time.perf_counter()
             begin_pull(engine, settings, started)

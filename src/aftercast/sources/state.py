@@ -9,11 +9,14 @@ a pull that dies half-way leaves the store as it was after its last committed st
 
 from __future__ import annotations
 
+import hashlib
 import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Any
 
 import pandas as pd
-from sqlalchemy import Connection, Engine, select, update
+from sqlalchemy import Connection, Engine, select, text, update
 from sqlalchemy.dialects import postgresql, sqlite
 
 from aftercast.settings.sources import SourceSettings
@@ -26,6 +29,37 @@ from aftercast.store.schema_sources import source_files, source_runs, source_sta
 def _insert_ignore(connection: Connection, table: Any, values: dict[str, Any]) -> None:
     dialect = postgresql if connection.dialect.name == "postgresql" else sqlite
     connection.execute(dialect.insert(table).values(**values).on_conflict_do_nothing())
+
+
+def _lock_key(name: str) -> int:
+    digest = hashlib.blake2b(f"aftercast source {name}".encode(), digest_size=8).digest()
+    return int.from_bytes(digest, "big", signed=True)
+
+
+@contextmanager
+def store_claim(engine: Engine, name: str) -> Iterator[bool]:
+    """Whether this process may pull source `name` now, held until the block ends.
+
+    On PostgreSQL, where several replicas share the store and each schedules every source, a
+    session advisory lock per source lets one replica pull it at a time; the others skip that
+    run. The lock lives on a connection kept for the pull, so a replica that dies releases it
+    with its connection. SQLite serves one process: always True.
+    """
+    if engine.dialect.name != "postgresql":
+        yield True
+        return
+    key = _lock_key(name)
+    with engine.connect() as connection:
+        mine = bool(
+            connection.execute(text("SELECT pg_try_advisory_lock(:k)"), {"k": key}).scalar()
+        )
+        connection.commit()  # a session lock outlives the transaction; do not sit idle in one
+        try:
+            yield mine
+        finally:
+            if mine:
+                connection.execute(text("SELECT pg_advisory_unlock(:k)"), {"k": key})
+                connection.commit()
 
 
 class StoredState:
