@@ -93,8 +93,8 @@ def test_exactly_one_message_per_transition(store_url: str, smtp: SmtpRecorder) 
     assert len(alerts(engine)) == 1  # one fingerprint, one alert
 
 
-def test_pending_alert_that_lapses_sends_nothing(sqlite_url: str, smtp: SmtpRecorder) -> None:
-    config = mail_config(sqlite_url, smtp.port, raise_after=3, clear_after=1)
+def test_pending_alert_that_lapses_sends_nothing(store_url: str, smtp: SmtpRecorder) -> None:
+    config = mail_config(store_url, smtp.port, raise_after=3, clear_after=1)
     engine = store(config)
     run(engine, config, [True, True, False])
     assert smtp.messages == []
@@ -103,9 +103,9 @@ def test_pending_alert_that_lapses_sends_nothing(sqlite_url: str, smtp: SmtpReco
 
 
 def test_raised_again_is_a_new_episode_of_the_same_alert(
-    sqlite_url: str, smtp: SmtpRecorder
+    store_url: str, smtp: SmtpRecorder
 ) -> None:
-    config = mail_config(sqlite_url, smtp.port, raise_after=1, clear_after=1)
+    config = mail_config(store_url, smtp.port, raise_after=1, clear_after=1)
     engine = store(config)
     run(engine, config, [True, False, True])
     kinds = [m.message["Subject"].split()[1] for m in smtp.messages]
@@ -116,15 +116,15 @@ def test_raised_again_is_a_new_episode_of_the_same_alert(
 
 
 def test_reminders_stop_once_acknowledged(
-    sqlite_url: str, smtp: SmtpRecorder, capsys: pytest.CaptureFixture[str], tmp_path: Any
+    store_url: str, smtp: SmtpRecorder, capsys: pytest.CaptureFixture[str], tmp_path: Any
 ) -> None:
-    config = mail_config(sqlite_url, smtp.port, remind_every_hours=12, raise_after=1, clear_after=1)
+    config = mail_config(store_url, smtp.port, remind_every_hours=12, raise_after=1, clear_after=1)
     engine = store(config)
     hours = 3600
     run(engine, config, [True, True, True], step=6 * hours)  # raised at 0 h, reminded at 12 h
     assert [m.message["Subject"].split()[1] for m in smtp.messages] == ["CRITICAL", "REMINDER"]
     path = tmp_path / "c.yaml"
-    path.write_text(f"store:\n  url: {sqlite_url}\n")
+    path.write_text(f"store:\n  url: {store_url}\n")
     alert_id = int(alerts(engine)["id"].iloc[0])
     assert main(["--config", str(path), "alerts", "ack", str(alert_id), "--by", "alice"]) == 0
     assert "acknowledged 1 of 1" in capsys.readouterr().out
@@ -138,14 +138,14 @@ def test_reminders_stop_once_acknowledged(
 
 
 def test_snoozed_raise_waits_for_the_snooze_to_end(
-    sqlite_url: str, smtp: SmtpRecorder, tmp_path: Any, capsys: pytest.CaptureFixture[str]
+    store_url: str, smtp: SmtpRecorder, tmp_path: Any, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    config = mail_config(sqlite_url, smtp.port, raise_after=2, clear_after=5)
+    config = mail_config(store_url, smtp.port, raise_after=2, clear_after=5)
     engine = store(config)
     wall = int(time.time())
     run(engine, config, [True], start=wall)  # pending
     path = tmp_path / "c.yaml"
-    path.write_text(f"store:\n  url: {sqlite_url}\n")
+    path.write_text(f"store:\n  url: {store_url}\n")
     alert_id = str(int(alerts(engine)["id"].iloc[0]))
     assert main(["--config", str(path), "alerts", "snooze", alert_id, "--until", "2d"]) == 0
     capsys.readouterr()
@@ -167,8 +167,8 @@ def test_snoozed_raise_waits_for_the_snooze_to_end(
     assert alerts(engine)["snoozed_until"].isna().all()
 
 
-def test_without_channels_alerts_are_tracked_and_nothing_is_queued(sqlite_url: str) -> None:
-    config = make_config(sqlite_url)
+def test_without_channels_alerts_are_tracked_and_nothing_is_queued(store_url: str) -> None:
+    config = make_config(store_url)
     engine = store(config)
     report = apply_findings(engine, config, findings(engine, [{"series": "store-17"}]), 1, NOW)
     assert report.notifications == 0
@@ -178,9 +178,9 @@ def test_without_channels_alerts_are_tracked_and_nothing_is_queued(sqlite_url: s
     assert outbox(engine).empty
 
 
-def test_rule_thresholds_narrow_what_detection_flags(sqlite_url: str) -> None:
+def test_rule_thresholds_narrow_what_detection_flags(store_url: str) -> None:
     config = make_config(
-        sqlite_url,
+        store_url,
         rules=[
             {"detection": "coverage_low", "max_p_value": 0.01, "min_points": 30, "raise_after": 1},
             {"detection": "bias", "match": {"team": "ops"}, "raise_after": 1},

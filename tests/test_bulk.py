@@ -227,3 +227,45 @@ def test_planner_statistics_follow_the_rows_just_written(store_url: str) -> None
             names = connection.execute(text("SELECT name FROM sqlite_master")).scalars().all()
             assert "sqlite_stat1" not in names
     engine.dispose()
+
+
+def test_two_writers_creating_the_same_model_and_series_both_succeed(pg_url: str) -> None:
+    """Two transactions create the same catalogue rows at once (replicas cycling their shards):
+    the second waits for the first to commit, then finds its rows; PostgreSQL's unique index is
+    the yardstick (one row per name, both writers see the same id)."""
+    import threading
+    import time
+
+    from aftercast.store.catalog import ensure_models, ensure_series
+    from aftercast.store.db import write
+    from tests.conftest import make_config
+
+    engine = make_engine(pg_url)
+    migrate(engine)
+    config = make_config(pg_url)
+    started, seen, failures = threading.Barrier(2), {}, []
+
+    def writer(name: str, first: bool) -> None:
+        try:
+            if not first:
+                started.wait()
+            with write(engine) as connection:
+                models = ensure_models(connection, ["benchmark:naive"])
+                series = ensure_series(connection, config, pd.Series(["north/rye"]))
+                if first:
+                    started.wait()
+                    time.sleep(0.5)  # the other writer's insert now waits on ours
+            seen[name] = (models["benchmark:naive"], int(series.loc["north/rye", "id"]))
+        except Exception as exc:  # reported below, with the writer's name
+            failures.append(f"{name}: {exc}")
+
+    threads = [threading.Thread(target=writer, args=(n, n == "a")) for n in ("a", "b")]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join(30)
+    assert failures == [] and seen["a"] == seen["b"]
+    with engine.connect() as connection:
+        assert connection.execute(text("SELECT COUNT(*) FROM models")).scalar_one() == 1
+        assert connection.execute(text("SELECT COUNT(*) FROM series")).scalar_one() == 1
+    engine.dispose()

@@ -97,10 +97,10 @@ def test_refused_three_times_then_accepted_arrives_exactly_once(
 
 
 def test_refused_for_good_is_dead_after_max_attempts_and_shows(
-    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     with HttpRecorder(default_status=500) as server:
-        engine, config = queue_one(sqlite_url, [hook(server.url())], max_attempts=3)
+        engine, config = queue_one(store_url, [hook(server.url())], max_attempts=3)
         clock = int(time.time())
         for _ in range(5):
             deliver_due(engine, config, now=clock)
@@ -109,7 +109,7 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     row = outbox(engine).iloc[0]
     assert row["status"] == "dead" and "gave up after 3 attempts" in row["detail"]
     path = tmp_path / "c.yaml"
-    path.write_text(f"store:\n  url: {sqlite_url}\n")
+    path.write_text(f"store:\n  url: {store_url}\n")
     assert main(["--config", str(path), "alerts", "notifications"]) == 0
     out = capsys.readouterr().out
     assert "dead" in out and "gave up after 3 attempts" in out and "1 dead" in out
@@ -118,34 +118,34 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     assert [(n["status"], n["attempts"]) for n in listed] == [("dead", 3)]
 
 
-def test_permanent_refusal_is_dead_at_once(sqlite_url: str) -> None:
+def test_permanent_refusal_is_dead_at_once(store_url: str) -> None:
     # RFC 9110 15.5: a 4xx other than 408/429 says the request itself is wrong; retrying won't help.
     with HttpRecorder(default_status=404) as server:
-        engine, config = queue_one(sqlite_url, [hook(server.url())])
+        engine, config = queue_one(store_url, [hook(server.url())])
         report = deliver_due(engine, config)
         assert (report.dead, len(server.requests)) == (1, 1)
 
 
 def test_dead_smtp_server_is_retried_and_its_failure_shows(
-    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     down = mail_channel(free_port())  # nothing listens there
     with HttpRecorder() as server:
-        engine, config = queue_one(sqlite_url, [down, hook(server.url())])
+        engine, config = queue_one(store_url, [down, hook(server.url())])
         report = deliver_due(engine, config)  # returns normally: a dead server is an outcome
         assert (report.delivered, report.retrying) == (1, 1)
         assert len(server.requests) == 1  # the webhook still got its message
     assert "connection refused" in report.failures[0]
     path = tmp_path / "c.yaml"
-    path.write_text(f"store:\n  url: {sqlite_url}\n")
+    path.write_text(f"store:\n  url: {store_url}\n")
     assert main(["--config", str(path), "alerts", "notifications"]) == 0
     out = capsys.readouterr().out
     assert "1 retrying" in out and "connection refused" in out
 
 
-def test_failing_channel_holds_back_the_rest_of_its_batch(sqlite_url: str) -> None:
+def test_failing_channel_holds_back_the_rest_of_its_batch(store_url: str) -> None:
     config = make_config(
-        sqlite_url,
+        store_url,
         channels=[mail_channel(free_port())],
         rules=[{"detection": "coverage_low", "raise_after": 1, "remind_every_hours": 0}],
     )
@@ -215,7 +215,7 @@ TOKEN = "tok-5f2c-never-shown"
 
 @pytest.mark.filterwarnings("ignore:Requiring AUTH while not requiring TLS")
 def test_secrets_never_reach_logs_output_or_the_store(
-    sqlite_url: str,
+    store_url: str,
     tmp_path: Path,
     monkeypatch: pytest.MonkeyPatch,
     capsys: pytest.CaptureFixture[str],
@@ -230,7 +230,7 @@ def test_secrets_never_reach_logs_output_or_the_store(
         with HttpRecorder(script=[503], reply_body=f"token {TOKEN} rejected") as server:
             path = tmp_path / "c.yaml"
             path.write_text(
-                f"store:\n  url: {sqlite_url}\nchannels:\n"
+                f"store:\n  url: {store_url}\nchannels:\n"
                 f"  - {{name: mail, type: email, host: {LOOPBACK}, port: {smtp.port},"
                 " security: none, sender: a@example.test, to: [b@example.test],"
                 " username: alerts, password: '${AC_SMTP_PASSWORD}'}\n"
@@ -269,16 +269,16 @@ def test_secrets_never_reach_logs_output_or_the_store(
 
 
 def test_dead_smtp_server_does_not_stop_the_cycle(
-    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     port = free_port()  # nothing listens there
     engine, _ = queue_one(
-        sqlite_url,
+        store_url,
         [mail_channel(port)],
     )
     path = tmp_path / "c.yaml"
     path.write_text(
-        f"store:\n  url: {sqlite_url}\nchannels:\n  - {{name: oncall-mail, type: email, "
+        f"store:\n  url: {store_url}\nchannels:\n  - {{name: oncall-mail, type: email, "
         f"host: {LOOPBACK}, port: {port}, security: none, sender: aftercast@example.test, "
         "to: [oncall@example.test]}\n"
     )

@@ -258,12 +258,12 @@ def _fresh_store_pairs(
     return _pairs_as_values(fresh)
 
 
-def test_naive_times_use_the_series_time_zone(tmp_path: Path, sqlite_url: str) -> None:
+def test_naive_times_use_the_series_time_zone(tmp_path: Path, store_url: str) -> None:
     from aftercast.store.db import make_engine, migrate
     from tests.conftest import make_config
 
-    config = make_config(sqlite_url, series=[{"id": "berlin", "timezone": "Europe/Berlin"}])
-    engine = make_engine(sqlite_url)
+    config = make_config(store_url, series=[{"id": "berlin", "timezone": "Europe/Berlin"}])
+    engine = make_engine(store_url)
     migrate(engine)
     path = write_csv(
         tmp_path / "a.csv", ACTUAL_HEADER, "berlin,2026-07-01T00:30,5", "utc,2026-07-01T00:30,5"

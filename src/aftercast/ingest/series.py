@@ -18,7 +18,7 @@ from aftercast.ingest.load import Written
 from aftercast.ingest.validate import Checked, _package
 from aftercast.periods import check_frequency, check_timezone
 from aftercast.store import schema
-from aftercast.store.bulk import insert_frame, read_frame
+from aftercast.store.bulk import insert_new, read_frame
 from aftercast.store.catalog import series_settings
 
 COLUMNS = ["series_id", "frequency", "season", "timezone", "unit"]
@@ -89,7 +89,7 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
     _refuse_period_changes(connection, checked, merged.loc[known], stored.loc[known])
     merged = merged.drop(index=merged.index.intersection(checked.rejected_keys))
     new = merged.loc[merged.index.difference(stored.index)].reset_index(names="key")
-    insert_frame(connection, schema.series, new.assign(created_at=now, updated_at=now))
+    insert_new(connection, schema.series, new.assign(created_at=now, updated_at=now), "key")
     changed = merged.loc[merged.index.intersection(stored.index)]
     params = [
         {

@@ -56,6 +56,30 @@ def insert_frame(connection: Connection, table: Table, frame: pd.DataFrame) -> i
     return len(frame)
 
 
+def insert_new(connection: Connection, table: Table, frame: pd.DataFrame, key: str) -> None:
+    """Insert the rows of `frame` whose unique `key` is not stored yet, skipping the others.
+
+    For catalogue rows (series, models) that several writers may create at once: replicas
+    cycling their shards, a push and a pull. On PostgreSQL a second insert of a key waits for
+    the first writer's commit and then does nothing, where COPY would fail the transaction.
+    """
+    if frame.empty:
+        return
+    columns = list(frame.columns)
+    mark = "%s" if is_postgres(connection) else "?"
+    sql = (
+        f"INSERT INTO {table.name} ({', '.join(columns)}) "
+        f"VALUES ({', '.join(mark for _ in columns)}) ON CONFLICT ({key}) DO NOTHING"
+    )
+    raw = connection.connection.driver_connection
+    assert raw is not None
+    cursor = raw.cursor()
+    try:
+        cursor.executemany(sql, list(_python_rows(frame)))
+    finally:
+        cursor.close()
+
+
 def _copy_postgres(
     connection: Connection, table: Table, columns: list[str], frame: pd.DataFrame
 ) -> None:

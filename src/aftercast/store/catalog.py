@@ -19,7 +19,7 @@ from sqlalchemy import Connection, Engine, bindparam, select, text
 
 from aftercast.config import Config, SeriesEntry
 from aftercast.store import schema
-from aftercast.store.bulk import insert_frame, read_frame
+from aftercast.store.bulk import insert_new, read_frame
 from aftercast.store.db import write
 
 SETTINGS = ["frequency", "season", "timezone", "unit"]
@@ -79,7 +79,7 @@ def ensure_series(connection: Connection, config: Config, keys: pd.Series) -> pd
         ]
         frame["created_at"] = now
         frame["updated_at"] = now
-        insert_frame(connection, schema.series, frame)
+        insert_new(connection, schema.series, frame, "key")  # another writer may be first
         stored = series_settings(connection, keys.unique())
     return stored
 
@@ -92,7 +92,7 @@ def ensure_models(connection: Connection, names: Iterable[str]) -> dict[str, int
     known: dict[str, int] = {str(name): int(id_) for name, id_ in connection.execute(query)}
     missing = [n for n in wanted if n not in known]
     if missing:
-        insert_frame(connection, table, pd.DataFrame({"name": missing}))
+        insert_new(connection, table, pd.DataFrame({"name": missing}), "name")
         query = select(table.c.name, table.c.id).where(table.c.name.in_(missing))
         known.update({str(name): int(id_) for name, id_ in connection.execute(query)})
     return known
