@@ -43,7 +43,11 @@ def test_demo_runs_the_whole_job_and_leaves_its_files(
         labels = connection.execute(
             text("SELECT labels FROM series WHERE key = 'shop-001/rye'")
         ).scalar_one()
+        quarantined = connection.execute(text("SELECT reason FROM quarantine")).scalars().all()
     engine.dispose()
+    # The late corrections file: four mistakes quarantined with their reasons, one revision.
+    assert len(quarantined) == 4 and any(r.startswith("malformed CSV line") for r in quarantined)
+    assert "0 accepted, 1 revised, 4 rejected" in printed
     assert pairs > 0 and raised > 0
     # The config's series entry is applied on top of the series file's labels.
     labels = json.loads(labels)

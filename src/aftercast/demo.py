@@ -150,6 +150,24 @@ def _show_entry(console: Console, config: Config) -> None:
     )
 
 
+def _show_rejections(console: Console, paths: DemoPaths, files: ScenarioFiles) -> None:
+    """A late file of corrections with mistakes in it: each bad row is rejected with its number
+    and reason and kept in the quarantine, the good row is taken as a revision."""
+    header, first = files.actuals[-1].read_text(encoding="utf-8").splitlines()[:2]
+    key, observed, value = first.split(",")[:3]
+    rows = [
+        f"{key},{observed},{float(value) + 3}",  # a corrected actual: a revision
+        f"{key},2026-02-30T00:00:00Z,{value}",  # no such day
+        f"{key},{observed},{value},sent twice",  # one field too many
+        f",{observed},{value}",  # no series
+        f"{key},{observed},inf",  # not a finite number
+    ]
+    path = paths.inputs / "late-corrections.csv"
+    path.write_text("\n".join([header, *rows]) + "\n", encoding="utf-8")
+    console.rule("[bold]A late file of corrections, with mistakes in it")
+    _run(console, paths.config, "ingest", "actuals", str(path))
+
+
 def _show_digests(console: Console, paths: DemoPaths) -> None:
     if not paths.digests.exists():
         console.print("no digest written")
@@ -194,6 +212,7 @@ def run_demo(folder: Path | None = None) -> int:
     )
     _replay_feed(console, config, files)
     _show_entry(console, config)
+    _show_rejections(console, paths, files)
     end = (pd.Timestamp(spec.start) + pd.Timedelta(days=spec.days - 1)).date()
     # The scenario's days are not today's: every status command here needs its clock.
     at_end = f"{end}T23:00:00Z"
