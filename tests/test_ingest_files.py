@@ -12,6 +12,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pandas as pd
+import pytest
 from sqlalchemy import Engine, text
 
 from aftercast.config import Config
@@ -53,13 +54,18 @@ def _with_chunks(url: str, rows: int) -> Config:
     return make_config(url, ingest={"chunk_rows": rows}, series_defaults={"frequency": "h"})
 
 
+@pytest.mark.parametrize("fmt", ["csv", "jsonl"])  # CSV is scanned in Arrow, others in pandas
 def test_rows_that_disagree_in_different_chunks_are_both_rejected(
-    engine: Engine, config: Config, tmp_path: Path
+    engine: Engine, config: Config, tmp_path: Path, fmt: str
 ) -> None:
     rows = _actual_rows(ROWS)
     rows[1501] = rows[0].rsplit(",", 1)[0] + ",-99"  # row 1502: row 1's key, another value
     rows[2204] = rows[4]  # row 2205 repeats row 5 exactly: one value, not a conflict
     path = _write(tmp_path / "actuals.csv", "series_id,observed_at,value", rows)
+    if fmt == "jsonl":
+        frame = pd.read_csv(path, dtype={"value": float})
+        path = tmp_path / "actuals.jsonl"
+        frame.to_json(path, orient="records", lines=True)
 
     report = ingest_path(engine, _with_chunks(str(config.store.url), 1_000), "actuals", path)
 

@@ -21,7 +21,7 @@ from aftercast.config import Config
 from aftercast.errors import InputFileError
 from aftercast.ingest import series as series_rows
 from aftercast.ingest.conflicts import find_conflicts, mark_conflicts
-from aftercast.ingest.files import Chunk, content_hash, read_chunks
+from aftercast.ingest.files import Chunk, content_hash, file_parts, read_chunks
 from aftercast.ingest.load import Written, write_actuals, write_forecasts
 from aftercast.ingest.validate import (
     ACTUAL_REQUIRED,
@@ -241,7 +241,7 @@ def ingest_path(engine: Engine, config: Config, kind: str, path: Path) -> Ingest
     require_columns(first.frame, REQUIRED[kind], str(path))
     second = next(chunks, None)
     head = [first] if second is None else [first, second]
-    clashes = {} if second is None else find_conflicts(kind, read_chunks(path, rows))
+    clashes = {} if second is None else find_conflicts(kind, file_parts(path, rows))
 
     def all_chunks() -> Any:
         for chunk in itertools.chain(head, chunks):

@@ -12,11 +12,12 @@ numbers (so `5` and `5.0` agree) and as stripped text otherwise.
 from __future__ import annotations
 
 from collections.abc import Iterable
+from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from aftercast.ingest.files import PRE_REJECTED, Chunk
+from aftercast.ingest.files import PRE_REJECTED, Chunk, TextBlock
 
 KEYS = {
     "forecasts": ["series_id", "model", "issued_at", "target_at"],
@@ -69,34 +70,87 @@ def _fold(frame: pd.DataFrame, columns: list[str], one: object) -> np.ndarray:
     return folded
 
 
-def find_conflicts(kind: str, chunks: Iterable[Chunk]) -> dict[int, str]:
-    """Row number -> reason, for the rows whose key has other values in another chunk."""
+def _chunk_hashes(chunk: Chunk, key_columns: list[str]) -> pd.DataFrame | None:
+    frame = chunk.frame
+    usable = (
+        frame[PRE_REJECTED].isna().to_numpy()
+        if PRE_REJECTED in frame
+        else np.ones(len(frame), dtype=bool)
+    )
+    frame = frame[usable]
+    if frame.empty or any(c not in frame for c in key_columns):
+        return None
+    values = [c for c in frame.columns if c not in key_columns and c != PRE_REJECTED]
+    return pd.DataFrame(
+        {
+            "key": _fold(frame, key_columns, _text_hash),
+            "value": _fold(frame, values, _value_hash),
+            "row": np.flatnonzero(usable) + chunk.first_row,
+        }
+    )
+
+
+def _arrow_text_hash(column: Any) -> np.ndarray:
+    # Hash each distinct stripped text once, in Arrow's dictionary of the column.
+    from pyarrow import compute
+
+    encoded = compute.dictionary_encode(compute.utf8_trim_whitespace(column)).combine_chunks()
+    distinct = encoded.dictionary.to_numpy(zero_copy_only=False).astype(object)
+    hashed = pd.util.hash_array(distinct, categorize=False) if len(distinct) else distinct
+    return np.asarray(hashed, dtype=np.uint64)[encoded.indices.to_numpy()]
+
+
+def _arrow_value_hash(column: Any) -> np.ndarray:
+    import pyarrow as pa
+    from pyarrow import compute
+
+    text = compute.utf8_trim_whitespace(column)
+    try:
+        blank = compute.equal(text, "")
+        numbers = compute.cast(compute.if_else(blank, None, text), pa.float64())
+    except (pa.ArrowInvalid, pa.ArrowTypeError):  # some cell is not a number: the careful way
+        return _value_hash(column.to_pandas())
+    values = numbers.to_numpy(zero_copy_only=False)
+    values = np.where(values == 0.0, 0.0, values)  # -0 and 0 are one value
+    hashed = values.view(np.uint64).copy()
+    empty = np.isnan(values)
+    if empty.any():
+        hashed[empty] = _arrow_text_hash(text)[empty]
+    return hashed
+
+
+def _block_hashes(block: TextBlock, key_columns: list[str]) -> pd.DataFrame | None:
+    table = block.table
+    if table.num_rows == 0 or any(c not in table.column_names for c in key_columns):
+        return None
+    folded = [np.zeros(table.num_rows, dtype=np.uint64), np.zeros(table.num_rows, dtype=np.uint64)]
+    for name in table.column_names:
+        is_key = name in key_columns
+        hashed = (_arrow_text_hash if is_key else _arrow_value_hash)(table.column(name))
+        folded[0 if is_key else 1] = (folded[0 if is_key else 1] * _MIX) ^ hashed
+    return pd.DataFrame({"key": folded[0], "value": folded[1], "row": block.row_numbers()})
+
+
+def find_conflicts(kind: str, parts: Iterable[Chunk | TextBlock]) -> dict[int, str]:
+    """Row number -> reason, for the rows whose key has other values in another chunk.
+
+    `parts` are the file's chunks, or for CSV its text blocks, hashed in Arrow without making
+    Python objects of every cell.
+    """
     if kind not in KEYS:
         return {}
     key_columns = KEYS[kind]
-    parts: list[pd.DataFrame] = []
-    for number, chunk in enumerate(chunks):
-        frame = chunk.frame
-        usable = (
-            frame[PRE_REJECTED].isna() if PRE_REJECTED in frame else pd.Series(True, frame.index)
-        )
-        frame = frame[usable.to_numpy()]
-        if frame.empty or any(c not in frame for c in key_columns):
-            continue
-        values = [c for c in frame.columns if c not in key_columns and c != PRE_REJECTED]
-        parts.append(
-            pd.DataFrame(
-                {
-                    "key": _fold(frame, key_columns, _text_hash),
-                    "value": _fold(frame, values, _value_hash),
-                    "chunk": np.int32(number),
-                    "row": np.flatnonzero(usable) + chunk.first_row,
-                }
-            )
-        )
-    if len(parts) < 2:
+    hashes: list[pd.DataFrame] = []
+    for number, part in enumerate(parts):
+        if isinstance(part, TextBlock):
+            found = _block_hashes(part, key_columns)
+        else:
+            found = _chunk_hashes(part, key_columns)
+        if found is not None:
+            hashes.append(found.assign(chunk=np.int32(number)))
+    if len(hashes) < 2:
         return {}
-    rows = pd.concat(parts, ignore_index=True)
+    rows = pd.concat(hashes, ignore_index=True)
     spread = rows.groupby("key").agg(values=("value", "nunique"), chunks=("chunk", "nunique"))
     clashing = spread.index[(spread["values"] > 1) & (spread["chunks"] > 1)]
     found = rows[rows["key"].isin(clashing)].sort_values("row")

@@ -114,6 +114,13 @@ def read_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
         yield from _jsonl_chunks(path, chunk_rows)
 
 
+def file_parts(path: Path, chunk_rows: int) -> Iterator[Chunk | TextBlock]:
+    """The file's chunks for a scan: CSV as Arrow text blocks (no Python object per cell)."""
+    if file_format(path) == "csv":
+        return csv_blocks(path, chunk_rows, str(path))
+    return read_chunks(path, chunk_rows)
+
+
 def csv_chunks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterator[Chunk]:
     """Chunks of `chunk_rows` rows of a CSV file or body, every value as text.
 
@@ -123,6 +130,44 @@ def csv_chunks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
     chunked reader would instead take such a line at a chunk's start as an index column or cut
     it short without a word. Leading spaces after a delimiter are dropped, as before.
     """
+    for block in csv_blocks(source, chunk_rows, label):
+        yield block.chunk()
+
+
+@dataclass(frozen=True)
+class TextBlock:
+    """A chunk of CSV before it becomes a frame: its rows as an Arrow table of text, the number
+    of its first row, and the malformed lines (number, reason) that fall among those rows."""
+
+    table: Any
+    first_row: int
+    malformed: list[tuple[int, str]]
+
+    def _positions(self) -> tuple[np.ndarray, np.ndarray]:
+        """Places of the table's rows and of the malformed lines within the chunk."""
+        total = self.table.num_rows + len(self.malformed)
+        wanted = np.array([number - self.first_row for number, _ in self.malformed], dtype=int)
+        # Kept in order and inside the chunk whatever numbers the reader gave.
+        bad = np.maximum.accumulate(np.maximum(wanted, 0) - np.arange(len(wanted)))
+        bad = np.minimum(bad, self.table.num_rows) + np.arange(len(wanted))
+        return np.setdiff1d(np.arange(total), bad), bad
+
+    def row_numbers(self) -> np.ndarray:
+        """The file's row number of each row of the table."""
+        return self._positions()[0] + self.first_row
+
+    def chunk(self) -> Chunk:
+        frame = self.table.to_pandas()
+        if not self.malformed:
+            return Chunk(frame, self.first_row)
+        rows, bad = self._positions()
+        reasons = pd.DataFrame({PRE_REJECTED: [reason for _, reason in self.malformed]}, index=bad)
+        combined = pd.concat([frame.set_axis(rows), reasons]).sort_index()
+        return Chunk(combined.reset_index(drop=True), self.first_row)
+
+
+def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterator[TextBlock]:
+    """The CSV as `TextBlock`s of `chunk_rows` rows (see `csv_chunks`)."""
     import pyarrow as pa
     from pyarrow import csv as arrow_csv
 
@@ -130,7 +175,7 @@ def csv_chunks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
     malformed: deque[tuple[int, str]] = deque()
 
     def set_aside(row: Any) -> str:
-        # Physical line numbers: the header is line 1. Exact unless a quoted value spans lines.
+        # The reader counts records from the header's, so the first data row is 2.
         fields = f"{row.actual_columns} fields, the header has {row.expected_columns}"
         malformed.append((int(row.number) - 1, f"malformed CSV line: {fields}"))
         return "skip"
@@ -139,7 +184,7 @@ def csv_chunks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
         reader = arrow_csv.open_csv(
             source,
             read_options=arrow_csv.ReadOptions(
-                column_names=names, skip_rows=1, block_size=16 << 20, use_threads=False
+                column_names=names, skip_rows=1, block_size=4 << 20, use_threads=False
             ),
             parse_options=arrow_csv.ParseOptions(
                 invalid_row_handler=set_aside, newlines_in_values=True
@@ -148,19 +193,34 @@ def csv_chunks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
                 column_types={name: pa.string() for name in names}, strings_can_be_null=False
             ),
         )
-        held = pd.DataFrame(columns=names)
+        # Rows stay Arrow batches until a chunk is full.
+        held: list[Any] = []
         first = 1
         for batch in reader:
-            held = pd.concat([held, _text_frame(batch)], ignore_index=True)
-            while len(held) >= chunk_rows:
-                chunk = _placed(held.iloc[:chunk_rows].reset_index(drop=True), first, malformed)
-                held = held.iloc[chunk_rows:]
-                yield chunk
-                first += len(chunk.frame)
-        if len(held) or malformed:
-            yield _placed(held.reset_index(drop=True), first, malformed, last=True)
+            held.append(_trimmed(batch))
+            while sum(b.num_rows for b in held) >= chunk_rows:
+                table = pa.Table.from_batches(held)
+                block = _block(table.slice(0, chunk_rows), first, malformed)
+                held = table.slice(chunk_rows).to_batches()
+                yield block
+                first += block.table.num_rows + len(block.malformed)
+        rest = pa.Table.from_batches(held, schema=reader.schema)
+        if rest.num_rows or malformed:
+            yield _block(rest, first, malformed, last=True)
     except (pa.ArrowInvalid, UnicodeDecodeError) as exc:
         raise InputFileError(f"{label}: not a readable CSV file ({_first_line(exc)})") from None
+
+
+def _block(
+    table: Any, first: int, malformed: deque[tuple[int, str]], last: bool = False
+) -> TextBlock:
+    """The block starting at row `first`, with the malformed lines that fall inside it (and,
+    for the `last` block, every one left)."""
+    end, placed = first + table.num_rows, []
+    while malformed and (last or malformed[0][0] < end):
+        placed.append(malformed.popleft())
+        end += 1  # each malformed line pushes the block's last row one further
+    return TextBlock(table, first, placed)
 
 
 def _csv_header(source: Path | IO[bytes], label: str) -> list[str]:
@@ -178,30 +238,13 @@ def _csv_header(source: Path | IO[bytes], label: str) -> list[str]:
     return next(csv.reader([text]))
 
 
-def _text_frame(batch: Any) -> pd.DataFrame:
+def _trimmed(batch: Any) -> Any:
+    """The batch with leading spaces dropped from every value (what a space after a comma is)."""
     import pyarrow as pa
     from pyarrow import compute
 
     columns = [compute.utf8_ltrim(column, characters=" ") for column in batch.columns]
-    return pa.RecordBatch.from_arrays(columns, names=batch.schema.names).to_pandas()
-
-
-def _placed(
-    frame: pd.DataFrame, first: int, malformed: deque[tuple[int, str]], last: bool = False
-) -> Chunk:
-    """The chunk starting at row `first`, with the malformed lines that fall inside it (and,
-    for the `last` chunk, every one left)."""
-    end, placed = first + len(frame), []
-    while malformed and (last or malformed[0][0] < end):
-        placed.append(malformed.popleft())
-        end += 1  # each malformed line pushes the chunk's last row one further
-    if not placed:
-        return Chunk(frame, first)
-    at = np.array([number - first for number, _ in placed])
-    rows = np.setdiff1d(np.arange(end - first), at)
-    reasons = pd.DataFrame({PRE_REJECTED: [reason for _, reason in placed]}, index=at)
-    combined = pd.concat([frame.set_axis(rows), reasons]).sort_index()
-    return Chunk(combined.reset_index(drop=True), first)
+    return pa.RecordBatch.from_arrays(columns, names=batch.schema.names)
 
 
 def _csv_file_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
