@@ -158,3 +158,38 @@ def test_label_columns_of_a_series_file_are_read_not_ignored(
     with engine.connect() as connection:
         labels = connection.execute(text("SELECT labels FROM series")).scalar_one()
     assert labels == '{"team": "bakers"}'
+
+
+def test_a_series_file_may_not_move_the_periods_of_a_series_with_data(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    """The CONTRACT's definitions count horizons in the series' periods and scale errors by its
+    season: once a series holds data, a file may relabel it but not move those."""
+    header = "series_id,frequency,season,timezone,unit,label_team"
+    first = _write(tmp_path / "s1.csv", header, ["a,D,7,UTC,loaves,ovens", "b,D,7,UTC,,ovens"])
+    assert ingest_path(engine, config, "series", first).accepted == 2
+    actuals = _write(tmp_path / "a.csv", "series_id,observed_at,value", ["a,2026-01-01,1"])
+    ingest_path(engine, config, "actuals", actuals)
+    refused = []
+    for name, row in (("freq", "a,h,7,UTC,loaves,ovens"), ("season", "a,D,12,UTC,loaves,ovens")):
+        report = ingest_path(
+            engine, config, "series", _write(tmp_path / f"{name}.csv", header, [row])
+        )
+        refused.append((report.rejected, report.examples[0].split(": ", 1)[1]))
+    assert (
+        refused
+        == [(1, "frequency, timezone or season cannot change once the series holds data")] * 2
+    )
+    rows = [
+        "a,D,7,UTC,trays,counter",  # labels and unit only: applied
+        "b,h,24,Europe/Paris,,counter",  # b holds no data yet: everything applied
+        "c,D,7,Mars/Olympus,,x",  # no such time zone
+    ]
+    report = ingest_path(engine, config, "series", _write(tmp_path / "s2.csv", header, rows))
+    assert report.rejected == 1 and "timezone" in report.examples[0]
+    with engine.connect() as connection:
+        stored = read_frame(connection, "SELECT * FROM series ORDER BY key").set_index("key")
+    assert (stored.loc["a", "frequency"], stored.loc["a", "season"]) == ("D", 7)
+    assert (stored.loc["a", "unit"], stored.loc["a", "labels"]) == ("trays", '{"team": "counter"}')
+    assert (stored.loc["b", "frequency"], stored.loc["b", "season"]) == ("h", 24)
+    assert stored.loc["b", "timezone"] == "Europe/Paris" and "c" not in stored.index

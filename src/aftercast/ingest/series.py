@@ -1,8 +1,10 @@
 """Series metadata rows: frequency, season, time zone, unit and `label_<name>` columns.
 
 Labels (team, region, ...) are what alert routing and the views filter by. Frequency and time
-zone fix how periods are counted, so they cannot change once a series has forecasts or actuals
-(its stored periods would silently shift); such a row is rejected with that reason.
+zone fix how periods are counted and season the scale of every scaled error, so they cannot
+change once a series has forecasts or actuals (its stored periods would silently shift, its
+window mix two scales); such a row is rejected with that reason, as the config's `series:`
+entries are refused (`store.catalog.sync_series_entries`).
 """
 
 from __future__ import annotations
@@ -121,8 +123,10 @@ def _refuse_period_changes(
     if wanted.empty:
         return
     stored = stored.reindex(wanted.index)
-    moved = (wanted["frequency"] != stored["frequency"]) | (
-        wanted["timezone"] != stored["timezone"]
+    moved = (
+        (wanted["frequency"] != stored["frequency"])
+        | (wanted["timezone"] != stored["timezone"])
+        | (wanted["season"].astype("float64") != stored["season"].astype("float64"))
     )
     if not moved.any():
         return
@@ -137,7 +141,7 @@ def _refuse_period_changes(
         extra = pd.DataFrame(
             {
                 "row_number": numbers["index"].to_numpy() + checked.first_row,
-                "reason": "frequency or timezone cannot change once the series holds data",
+                "reason": "frequency, timezone or season cannot change once the series holds data",
                 "raw": [json.dumps({"series_id": k}) for k in blocked],
             }
         )
