@@ -193,3 +193,33 @@ def test_a_series_file_may_not_move_the_periods_of_a_series_with_data(
     assert (stored.loc["a", "unit"], stored.loc["a", "labels"]) == ("trays", '{"team": "counter"}')
     assert (stored.loc["b", "frequency"], stored.loc["b", "season"]) == ("h", 24)
     assert stored.loc["b", "timezone"] == "Europe/Paris" and "c" not in stored.index
+
+
+def test_text_that_is_not_unicode_and_a_season_too_long_are_rejected_not_errors(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    """JSON may escape a lone surrogate (RFC 8259 allows `\\ud800`), which UTF-8, and so no
+    store, can hold; such a row is rejected like any bad row, as is a season the store's
+    integer column cannot hold (the pushed case an OpenAPI fuzzer found)."""
+    from aftercast.ingest import ingest_records
+
+    pushed = [
+        {"series_id": "north/\ud8d0rye"},
+        {"series_id": "north/wheat", "season": 10**20},
+        {"series_id": "north/rye", "season": 7},
+    ]
+    report = ingest_records(engine, config, "series", pushed, "POST /v1/series")
+    assert (report.accepted, report.rejected) == (1, 2)
+    assert report.examples == [
+        "POST /v1/series row 1: series_id is not Unicode text",
+        "POST /v1/series row 2: season is not a whole number from 1 to 1000000",
+    ]
+    path = tmp_path / "actuals.jsonl"
+    path.write_text(
+        '{"series_id": "north/rye", "observed_at": "2026-01-01\\udd21", "value": 1}\n'
+        '{"series_id": "north/rye", "observed_at": "2026-01-02", "value": 2}\n',
+        encoding="utf-8",
+    )
+    report = ingest_path(engine, config, "actuals", path)
+    assert (report.accepted, report.rejected) == (1, 1)
+    assert report.examples == [f"{path} row 1: observed_at is not Unicode text"]

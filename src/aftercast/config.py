@@ -34,9 +34,14 @@ class StoreConfig(Strict):
     echo: bool = False
 
 
+# The longest seasonal lag taken, in periods: a 15-minute series' year is 35,136; the store
+# keeps it in a 32-bit integer column.
+MAX_SEASON = 1_000_000
+
+
 class SeriesDefaults(Strict):
     frequency: str = "D"
-    season: int = Field(7, ge=1)
+    season: int = Field(7, ge=1, le=MAX_SEASON)
     timezone: str = "UTC"
 
     @field_validator("frequency")
@@ -61,7 +66,7 @@ class SeriesEntry(Strict):
 
     id: str
     frequency: str | None = None
-    season: int | None = Field(None, ge=1)
+    season: int | None = Field(None, ge=1, le=MAX_SEASON)
     timezone: str | None = None
     unit: str | None = None
     labels: dict[str, str] = Field(default_factory=dict)

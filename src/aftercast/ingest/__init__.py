@@ -21,7 +21,13 @@ from aftercast.config import Config
 from aftercast.errors import InputFileError
 from aftercast.ingest import series as series_rows
 from aftercast.ingest.conflicts import find_conflicts, mark_conflicts
-from aftercast.ingest.files import Chunk, content_hash, file_parts, read_chunks
+from aftercast.ingest.files import (
+    Chunk,
+    content_hash,
+    file_parts,
+    read_chunks,
+    set_aside_invalid_text,
+)
 from aftercast.ingest.load import Written, write_actuals, write_forecasts
 from aftercast.ingest.validate import (
     ACTUAL_REQUIRED,
@@ -257,4 +263,5 @@ def ingest_records(
     frame = pd.DataFrame.from_records(records) if records else pd.DataFrame()
     if frame.empty:
         raise InputFileError(f"{source}: no rows")
-    return ingest_chunks(engine, config, kind, source, iter([Chunk(frame, 1)]))
+    chunk = Chunk(set_aside_invalid_text(frame), 1)
+    return ingest_chunks(engine, config, kind, source, iter([chunk]))

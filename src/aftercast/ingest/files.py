@@ -274,7 +274,7 @@ def _jsonl_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
             lines = list(islice(handle, chunk_rows))
             if not lines:
                 return
-            yield Chunk(_parse_jsonl(path, lines, first), first)
+            yield Chunk(set_aside_invalid_text(_parse_jsonl(path, lines, first)), first)
             first += len(lines)
 
 
@@ -300,6 +300,38 @@ def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
         records.append(value)
         del offset
     return pd.DataFrame.from_records(records)
+
+
+def set_aside_invalid_text(frame: pd.DataFrame) -> pd.DataFrame:
+    """Rows holding text that is not Unicode (a lone surrogate, which a JSON `\\ud800` escape
+    can carry and no store can keep) set aside with that reason, their odd cells cleared.
+
+    For rows parsed from JSON; a CSV file or body has been decoded as UTF-8 already.
+    """
+    reasons = pd.Series(None, index=frame.index, dtype=object)
+    for column in frame.columns:
+        if frame[column].dtype != object or column == PRE_REJECTED:
+            continue
+        odd = frame[column].map(_lone_surrogate).to_numpy(dtype=bool)
+        if odd.any():
+            frame = frame.copy() if reasons.isna().all() else frame
+            frame.loc[odd, column] = None
+            reasons[odd & reasons.isna().to_numpy()] = f"{column} is not Unicode text"
+    if reasons.isna().all():
+        return frame
+    if PRE_REJECTED in frame:
+        reasons = frame[PRE_REJECTED].where(frame[PRE_REJECTED].notna(), reasons)
+    return frame.assign(**{PRE_REJECTED: reasons})
+
+
+def _lone_surrogate(value: object) -> bool:
+    if not isinstance(value, str):
+        return False
+    try:
+        value.encode("utf-8")
+    except UnicodeEncodeError:
+        return True
+    return False
 
 
 def _first_line(exc: BaseException) -> str:

@@ -14,7 +14,7 @@ import json
 import pandas as pd
 from sqlalchemy import Connection, text
 
-from aftercast.config import SeriesDefaults
+from aftercast.config import MAX_SEASON, SeriesDefaults
 from aftercast.ingest.cells import Reasons, flag_unreadable, key_values
 from aftercast.ingest.load import Written
 from aftercast.ingest.validate import Checked, _package
@@ -51,7 +51,8 @@ def check(frame: pd.DataFrame, first_row: int) -> Checked:
         raw = frame["season"].astype("string").str.strip().replace("", pd.NA)
         season = pd.to_numeric(raw, errors="coerce")
         reasons.flag(
-            raw.notna() & ~((season >= 1) & (season % 1 == 0)), "season is not a whole number >= 1"
+            raw.notna() & ~((season >= 1) & (season <= MAX_SEASON) & (season % 1 == 0)),
+            f"season is not a whole number from 1 to {MAX_SEASON}",
         )
         good["season"] = season
     labels = [c for c in frame.columns if str(c).startswith("label_")]

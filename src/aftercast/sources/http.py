@@ -23,7 +23,7 @@ import pandas as pd
 import requests
 
 from aftercast.errors import InputFileError
-from aftercast.ingest.files import PRE_REJECTED, Chunk
+from aftercast.ingest.files import PRE_REJECTED, Chunk, set_aside_invalid_text
 from aftercast.ingest.files import csv_chunks as read_csv_chunks
 from aftercast.settings.sources import HttpSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
@@ -71,7 +71,8 @@ def _records_at(document: Any, key: str | None) -> list[Any]:
 
 def _frames(records: list[dict[str, Any]], chunk_rows: int) -> Iterator[Chunk]:
     for start in range(0, len(records), chunk_rows):
-        yield Chunk(pd.DataFrame.from_records(records[start : start + chunk_rows]), start + 1)
+        frame = pd.DataFrame.from_records(records[start : start + chunk_rows])
+        yield Chunk(set_aside_invalid_text(frame), start + 1)
 
 
 class HttpSource(Source):
