@@ -54,6 +54,12 @@ CASES = {
     "not UTF-8": _ingest(
         "l.csv", lambda d: (d / "l.csv").write_bytes(b"series_id,observed_at,value\n\xe9,x,1\n")
     ),
+    "a column named twice": _ingest(
+        "twice.csv",
+        lambda d: write_csv(
+            d / "twice.csv", "series_id,observed_at,value,value", "s,2026-01-01,1,2"
+        ),
+    ),
     "a directory": _ingest("folder.csv", lambda d: (d / "folder.csv").mkdir()),
     "a directory without type": _ingest("folder", lambda d: (d / "folder").mkdir()),
     "no such file": _ingest("nope.csv", lambda d: None),

@@ -172,6 +172,11 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
     from pyarrow import csv as arrow_csv
 
     names = [name.lstrip(" ") for name in _csv_header(source, label)]
+    twice = sorted({name for name in names if names.count(name) > 1})
+    if twice:  # which of the two would hold the value? The file must say.
+        raise InputFileError(
+            f"{label}: column {', '.join(twice)} appears more than once in the header"
+        )
     malformed: deque[tuple[int, str]] = deque()
 
     def set_aside(row: Any) -> str:
