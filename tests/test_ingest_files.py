@@ -223,3 +223,24 @@ def test_text_that_is_not_unicode_and_a_season_too_long_are_rejected_not_errors(
     report = ingest_path(engine, config, "actuals", path)
     assert (report.accepted, report.rejected) == (1, 1)
     assert report.examples == [f"{path} row 1: observed_at is not Unicode text"]
+
+
+def test_a_nul_character_is_rejected_where_postgresql_could_not_store_it(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    """PostgreSQL's text type cannot hold NUL (its documentation, "Character Types"); pandas'
+    text hash table would also have read "zz\\x00" as "zz". Each such row is rejected."""
+    path = tmp_path / "actuals.csv"
+    path.write_bytes(
+        b"series_id,observed_at,value\n"
+        b"zz,2026-01-01T00:00:00Z\x00,1\n"
+        b"zz\x00,2026-01-02T00:00:00Z,2\n"
+        b"zz,2026-01-03T00:00:00Z,3\n"
+    )
+    report = ingest_path(engine, config, "actuals", path)
+    assert (report.accepted, report.rejected) == (1, 2)
+    assert [e.split(": ", 1)[1] for e in report.examples] == [
+        "unparseable observed_at: '2026-01-01T00:00:00Z\\x00'",
+        "series_id holds a NUL character",
+    ]
+    assert _actuals(engine)["key"].tolist() == ["zz"]

@@ -112,6 +112,10 @@ def _quarantine(
     rejected = checked.rejected
     if rejected.empty:
         return
+    # A reason may quote the cell it rejects: keep it storable (no NUL, no lone surrogate).
+    reason = rejected["reason"].astype(str).str.replace("\x00", "\\x00", regex=False)
+    reason = reason.map(lambda r: r.encode("utf-8", "backslashreplace").decode("utf-8"))
+    rejected = rejected.assign(reason=reason)
     frame = _not_yet_quarantined(connection, rejected, report)
     frame = frame.assign(batch_id=batch_id, kind=report.kind, source=report.source, recorded_at=now)
     insert_frame(

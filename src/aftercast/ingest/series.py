@@ -15,7 +15,7 @@ import pandas as pd
 from sqlalchemy import Connection, text
 
 from aftercast.config import MAX_SEASON, SeriesDefaults
-from aftercast.ingest.cells import Reasons, flag_unreadable, key_values
+from aftercast.ingest.cells import Reasons, flag_nul, flag_unreadable, key_values
 from aftercast.ingest.load import Written
 from aftercast.ingest.validate import Checked, _package
 from aftercast.periods import check_frequency, check_timezone
@@ -43,6 +43,7 @@ def check(frame: pd.DataFrame, first_row: int) -> Checked:
     for column in ("frequency", "timezone", "unit"):
         if column in frame.columns:
             good[column] = frame[column].astype("string").str.strip().replace("", pd.NA)
+            flag_nul(good[column], column, reasons)
     if "frequency" in good:
         _check_values(good["frequency"], check_frequency, reasons, "frequency")
     if "timezone" in good:
