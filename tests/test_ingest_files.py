@@ -244,3 +244,6 @@ def test_a_nul_character_is_rejected_where_postgresql_could_not_store_it(
         "series_id holds a NUL character",
     ]
     assert _actuals(engine)["key"].tolist() == ["zz"]
+    alone = tmp_path / "alone.csv"  # its only key holds a NUL: never even looked up
+    alone.write_bytes(b"series_id,observed_at,value\ns\x00,2026-01-01T00:00:00Z,1\n")
+    assert ingest_path(engine, config, "actuals", alone).rejected == 1

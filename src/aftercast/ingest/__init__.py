@@ -171,7 +171,9 @@ def _write_chunk(
         written = series_rows.write(connection, checked, now, config.series_defaults)
     else:
         keys = frame["series_id"].astype("string").str.strip().dropna()
-        settings = _settings_of(connection, config, keys[keys != ""])
+        # Keys that validation will reject are not looked up (a NUL cannot even be sent).
+        usable = (keys != "") & ~keys.str.contains("\x00", regex=False)
+        settings = _settings_of(connection, config, keys[usable])
         check = check_forecasts if kind == "forecasts" else check_actuals
         checked = check(frame, chunk.first_row, settings)
         # Only series with a row that passed are created: a rejected row leaves no trace.
