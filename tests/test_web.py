@@ -83,11 +83,12 @@ class Fleet:
     series: list[str]
 
 
-def seeded_store(folder: Path, **config_sections: Any) -> tuple[Engine, Config]:
-    """A SQLite store holding a small bakery scenario, matched and scored at NOW."""
-    config = make_config(
-        f"sqlite:///{folder / 'aftercast.db'}", api={"token": TOKEN}, **config_sections
-    )
+def seeded_store(
+    folder: Path, url: str | None = None, **config_sections: Any
+) -> tuple[Engine, Config]:
+    """A store (SQLite unless `url`) holding a small bakery scenario, matched at NOW."""
+    url = url or f"sqlite:///{folder / 'aftercast.db'}"
+    config = make_config(url, api={"token": TOKEN}, **config_sections)
     engine = make_engine(config.store.url)
     migrate(engine)
     files = write(generate(ScenarioSpec(n_series=6, days=40, horizons=3)), folder / "data")
