@@ -83,6 +83,13 @@ def _reason_code(reason: str) -> str:
     return reason.split(":", 1)[0]
 
 
+# A source's quarantined rows in a range of row numbers: a range of `ix_quarantine_lookup`.
+QUARANTINED_ROWS = (
+    "SELECT row_number, reason, raw FROM quarantine WHERE kind = :kind AND source = :source "
+    "AND row_number BETWEEN :low AND :high"
+)
+
+
 def _not_yet_quarantined(
     connection: Connection, rejected: pd.DataFrame, report: IngestReport
 ) -> pd.DataFrame:
@@ -90,8 +97,7 @@ def _not_yet_quarantined(
     again counts its rejections again but stores each (row, reason, raw values) once."""
     stored = read_frame(
         connection,
-        "SELECT row_number, reason, raw FROM quarantine WHERE kind = :kind AND source = :source "
-        "AND row_number BETWEEN :low AND :high",
+        QUARANTINED_ROWS,
         {
             "kind": report.kind,
             "source": report.source,

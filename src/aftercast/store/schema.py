@@ -180,6 +180,8 @@ quarantine = Table(
     Column("raw", Text, nullable=False),  # JSON object of the row as read
     Column("recorded_at", BigInteger, nullable=False),
     Index("ix_quarantine_batch", "batch_id"),
+    # Ingesting a file again looks up its rows already quarantined (`ingest._not_yet_quarantined`).
+    Index("ix_quarantine_lookup", "kind", "source", "row_number"),
 )
 
 ingest_log = Table(

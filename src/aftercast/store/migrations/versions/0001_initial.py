@@ -2,7 +2,8 @@
 
 The tables this revision created and a later revision changed are frozen here as they were
 first created (`forecasts` and its bound and quantile child tables, reshaped by
-`0007_packed_bounds`), so upgrading an empty store replays the same history as an old store.
+`0007_packed_bounds`; `quarantine`, indexed for its re-ingest lookup by
+`0009_quarantine_lookup`), so upgrading an empty store replays the same history as an old store.
 
 Revision ID: 0001
 Revises:
@@ -16,7 +17,9 @@ from sqlalchemy import (
     Index,
     Integer,
     MetaData,
+    String,
     Table,
+    Text,
     UniqueConstraint,
 )
 
@@ -59,6 +62,19 @@ Table(
     Column("forecast_id", BigInteger, primary_key=True),
     Column("prob", Float, primary_key=True),
     Column("value", Float, nullable=False),
+)
+Table(
+    "quarantine",
+    frozen,
+    Column("id", BigInteger().with_variant(Integer(), "sqlite"), primary_key=True),
+    Column("batch_id", BigInteger, nullable=False),
+    Column("kind", String(16), nullable=False),
+    Column("source", Text, nullable=False),
+    Column("row_number", BigInteger),
+    Column("reason", Text, nullable=False),
+    Column("raw", Text, nullable=False),
+    Column("recorded_at", BigInteger, nullable=False),
+    Index("ix_quarantine_batch", "batch_id"),
 )
 
 
