@@ -155,6 +155,17 @@ def to_iso(epoch_seconds: int | None) -> str | None:
     return pd.Timestamp(int(epoch_seconds), unit="s", tz="UTC").isoformat().replace("+00:00", "Z")
 
 
+def iso_texts(epoch_seconds: pd.Series) -> pd.Series:
+    """`to_iso` of every value, computed once per distinct instant (a column of pairs' issue
+    and target times repeats a few instants many times).
+
+    >>> iso_texts(pd.Series([86400, None, 86400])).tolist()
+    ['1970-01-02T00:00:00Z', None, '1970-01-02T00:00:00Z']
+    """
+    names = {value: to_iso(value) for value in epoch_seconds.dropna().unique()}
+    return epoch_seconds.map(names).astype(object).where(epoch_seconds.notna(), None)
+
+
 def parse_instant(text: str) -> int:
     """Epoch seconds of one ISO 8601 time given on the command line (UTC when no offset)."""
     stamp = pd.Timestamp(text)

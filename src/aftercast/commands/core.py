@@ -21,7 +21,7 @@ from aftercast.config import Config, load_config
 from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, InputFileError
 from aftercast.ingest import IngestReport, ingest_path
-from aftercast.periods import parse_instant, to_iso
+from aftercast.periods import iso_texts, parse_instant
 from aftercast.store.catalog import sync_series_entries
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.store.queries import iter_pair_export
@@ -158,7 +158,7 @@ def cmd_scores(args: argparse.Namespace) -> int:
         with engine.connect() as connection, _open_for_writing(output) as handle:
             for index, frame in enumerate(iter_pair_export(connection)):
                 for column in ("issued_at", "target_at"):
-                    frame[column] = frame[column].map(to_iso)
+                    frame[column] = iso_texts(frame[column])
                 frame = frame.drop(columns=["forecast_id", "target_period"])
                 if args.format == "csv":
                     frame.to_csv(handle, index=False, header=index == 0)
@@ -174,14 +174,38 @@ def cmd_scores(args: argparse.Namespace) -> int:
 def _write_jsonl(handle: TextIO, frame: pd.DataFrame) -> None:
     """One JSON object per pair, missing measures as null.
 
-    The json module writes the shortest text that reads back as the same float, as the CSV
-    does; pandas' own JSON writer rounds to at most 15 decimals, so the two exports disagreed.
+    Floats are written as Python writes them (the shortest text that reads back as the same
+    float, what the json module and the CSV export write); pandas' own JSON writer rounds to
+    at most 15 decimals. The lines are built a column at a time rather than by a json.dumps
+    per pair, which took about three times as long.
     """
-    finite = frame.replace([np.inf, -np.inf], np.nan)  # JSON has no infinity; null, as before
-    values = finite.astype(object).where(finite.notna(), None)
-    for record in values.to_dict(orient="records"):
-        handle.write(json.dumps(record, separators=(",", ":")))
-        handle.write("\n")
+    if frame.empty:
+        return
+    lines: Any = None
+    for position, column in enumerate(frame.columns):
+        key = ("{" if position == 0 else ",") + json.dumps(str(column)) + ":"
+        text = key + _json_texts(frame[column])
+        lines = text if lines is None else lines + text
+    handle.write("".join(lines + "}\n"))
+
+
+def _json_texts(values: pd.Series) -> pd.Series:
+    """Each value of a column as JSON text: null for a missing or non-finite number."""
+    missing = values.isna().to_numpy()
+    if pd.api.types.is_integer_dtype(values):
+        whole = values.fillna(0).astype("int64").to_numpy()
+        texts = np.array(list(map(str, whole.tolist())), dtype=object)
+    elif pd.api.types.is_float_dtype(values):
+        numbers = values.to_numpy(dtype=np.float64)
+        texts = np.array(list(map(repr, numbers.tolist())), dtype=object)
+        missing |= ~np.isfinite(numbers)
+    else:
+        # Text repeats (series, model, instants): escape each distinct value once.
+        codes, distinct = pd.factorize(values)
+        escaped = np.array([json.dumps(v) for v in distinct.tolist()] + ["null"], dtype=object)
+        texts = escaped[codes]  # code -1, a missing value, takes the last: null
+    texts[missing] = "null"
+    return pd.Series(texts, index=values.index)
 
 
 def cmd_demo(args: argparse.Namespace) -> int:

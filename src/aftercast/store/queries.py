@@ -96,16 +96,16 @@ def _widen(
     frame: pd.DataFrame, intervals: pd.DataFrame, quantiles: pd.DataFrame, columns: list[str]
 ) -> pd.DataFrame:
     """One column per level and quantile measure (hit_80, width_80, ...), exactly `columns`."""
-    from aftercast.windows import level_name
+    from aftercast.windows import level_names
 
     out = frame.set_index("forecast_id")
     if not intervals.empty:
-        intervals = intervals.assign(level=intervals["level"].map(level_name))
+        intervals = intervals.assign(level=level_names(intervals["level"]))
         for column in INTERVAL_MEASURES:
             wide = intervals.pivot(index="forecast_id", columns="level", values=column)
             out = out.join(wide.add_prefix(f"{column}_"))
     if not quantiles.empty:
-        quantiles = quantiles.assign(prob=quantiles["prob"].map(level_name))
+        quantiles = quantiles.assign(prob=level_names(quantiles["prob"]))
         for column, prefix in QUANTILE_MEASURES:
             wide = quantiles.pivot(index="forecast_id", columns="prob", values=column)
             out = out.join(wide.add_prefix(prefix))

@@ -18,7 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from sqlalchemy import Engine
 
 from aftercast.config import Config
-from aftercast.periods import parse_instant, to_iso
+from aftercast.periods import iso_texts, parse_instant, to_iso
 from aftercast.report import status_json
 from aftercast.store.bulk import read_frame
 from aftercast.store.queries import PAIR_SELECT, intervals_for, quantiles_for
@@ -144,7 +144,7 @@ def pairs_page(engine: Engine, filters: PairFilter, after: int, limit: int) -> l
     bands = _nested(intervals, "level", ["lower", "upper", "hit", "width", "interval_score"])
     probs = _nested(quantiles, "prob", ["value", "pinball"])
     for column in ("issued_at", "target_at"):
-        frame[column] = frame[column].map(to_iso)
+        frame[column] = iso_texts(frame[column])
     items = records(frame.drop(columns=["target_period"]))
     for item in items:
         item["intervals"] = bands.get(item["forecast_id"], {})
