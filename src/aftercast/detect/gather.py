@@ -156,7 +156,7 @@ def _window_source(
         connection,
         "SELECT series_id, model_id, MIN(target_period) - 1 AS low FROM ("
         "SELECT p.series_id, p.model_id, p.target_period, DENSE_RANK() OVER (PARTITION BY "
-        f"p.series_id, p.model_id ORDER BY p.target_period DESC) AS period_rank FROM pairs p "
+        "p.series_id, p.model_id ORDER BY p.target_period DESC) AS period_rank FROM pairs p "
         f"{chosen}WHERE p.target_at <= :now AND p.model_id IN {models}{page}) ranked "
         "WHERE period_rank <= :points GROUP BY series_id, model_id",
         {"now": now, "points": points, **params},
