@@ -9,6 +9,7 @@ statsmodels (Nile flow, El Nino sea temperature).
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import replace
 from pathlib import Path
 
@@ -210,3 +211,14 @@ def test_past_errors_are_the_lagged_differences_of_each_series_with_gaps() -> No
             if period - lag in y.index:
                 expected.append((series, lag, period, value - y[period - lag]))
     assert list(got.itertuples(index=False, name=None)) == expected
+
+
+def test_seasonal_naive_ignores_the_history_of_series_without_requests() -> None:
+    # The backtest passes every series' actuals: a series without a request has no season, and
+    # must neither change the others' forecasts (FPP3 section 5.2) nor cast NaN to a phase.
+    history = pd.concat([_elnino(), _nile().assign(series_id=7)], ignore_index=True)
+    y = _elnino()["value"].to_numpy()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = point_forecasts("seasonal-naive", history, _requests(2, [131], range(1, 3), 12))
+    assert got.tolist() == [y[130 - 12 + 1], y[130 - 12 + 2]]

@@ -8,6 +8,8 @@ whose p-values are exact must reject about as often as its level).
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -75,6 +77,19 @@ def test_welch_p_value_equals_scipy() -> None:
         b = baseline[row][~np.isnan(baseline[row])]
         expected = stats.ttest_ind(recent[row], b, equal_var=False, alternative="greater").pvalue
         assert got[row] == pytest.approx(expected)
+
+
+def test_welch_p_value_of_a_single_recent_target_is_nan_without_a_warning() -> None:
+    # scipy's ttest_ind gives NaN for a sample of one; a key with one recent target is common,
+    # so it must not raise a RuntimeWarning every cycle either.
+    recent = np.array([[2.0, np.nan, np.nan], [2.0, 3.5, 2.5]])
+    baseline = np.array([[1.0, 1.5, 1.2], [1.0, 1.5, 1.2]])
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = welch_greater_pvalue(recent, baseline)
+    assert np.isnan(got[0])
+    expected = stats.ttest_ind(recent[1], baseline[1], equal_var=False, alternative="greater")
+    assert got[1] == pytest.approx(expected.pvalue)
 
 
 def _hits(coverage: dict[tuple[int, int, float], float], n: int, seed: int) -> pd.DataFrame:

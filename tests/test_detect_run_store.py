@@ -262,3 +262,38 @@ def test_interval_levels_list_every_scored_level_and_the_migration_fills_them(
     with engine.connect() as connection:
         assert connection.execute(text(query)).scalars().all() == [50.0, 80.0, 95.0]
     engine.dispose()
+
+
+def test_points_window_reaches_back_over_a_gap_in_the_targets(
+    engine: Engine, store_url: str
+) -> None:
+    """CONTRACT: `window.points: N` holds the pairs of the N latest target periods, however far
+    back they lie: a daily series forecast for 6 days, silent for 40, then forecast for 4 more,
+    gives a 10-point window of all 10 targets (the detection window used to stop 30 periods
+    before the latest target, and held only the last 4)."""
+    from aftercast.detect.gather import window_data
+    from aftercast.ingest import ingest_records
+    from aftercast.matching import match
+
+    config = make_config(store_url, window={"points": 10})
+    days = pd.date_range("2026-01-01", periods=50, freq="D", tz="UTC")
+    targets = [*days[:6], *days[46:]]
+    ingest_records(
+        engine,
+        config,
+        "actuals",
+        [{"series_id": "s", "observed_at": d.isoformat(), "value": 10.0} for d in targets],
+        "test",
+    )
+    forecasts = [
+        {"series_id": "s", "model": "m", "issued_at": (d - pd.Timedelta(hours=18)).isoformat(),
+         "target_at": d.isoformat(), "point": 9.0}
+        for d in targets
+    ]  # fmt: skip
+    ingest_records(engine, config, "forecasts", forecasts, "test")
+    now = int(days[-1].timestamp())
+    match(engine, now)
+    with engine.connect() as connection:
+        data = window_data(connection, config, now)
+    got = sorted(data.pairs["target_at"].tolist())
+    assert got == sorted(int(d.timestamp()) for d in targets)

@@ -31,6 +31,7 @@ def sample() -> tuple[np.ndarray, np.ndarray]:
 def test_documented_sklearn_example() -> None:
     # Values printed in the scikit-learn documentation: MAE 0.5, MSE 0.375.
     e = measures.forecast_error(SKLEARN_Y, SKLEARN_F)
+    assert np.abs(e).mean() == pytest.approx(0.5) and (e**2).mean() == pytest.approx(0.375)
     assert np.abs(e).mean() == pytest.approx(metrics.mean_absolute_error(SKLEARN_Y, SKLEARN_F))
     assert (e**2).mean() == pytest.approx(metrics.mean_squared_error(SKLEARN_Y, SKLEARN_F))
 

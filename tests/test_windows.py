@@ -170,8 +170,10 @@ def test_window_coverage_of_calibrated_intervals_is_near_nominal(
     # coverage must pass scipy's exact binomial test.
     y, f, horizon = gaussian
     row = rows_of(*make_pairs(y, f, horizon)).iloc[-1]
-    hits = int(row["hits_80"])
-    assert row["coverage_80"] == hits / len(y)
+    # CONTRACT: coverage = share of pairs with lower <= y <= upper, counted here with numpy.
+    half = stats.norm.ppf(0.9)
+    hits = int(((f - half <= y) & (y <= f + half)).sum())
+    assert row["hits_80"] == hits and row["coverage_80"] == pytest.approx(hits / len(y))
     assert stats.binomtest(hits, len(y), 0.8).pvalue > 0.001
     assert row["width_80"] == pytest.approx(2 * stats.norm.ppf(0.9))
 

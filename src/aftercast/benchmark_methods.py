@@ -104,6 +104,8 @@ def point_forecasts(method: str, history: pd.DataFrame, requests: pd.DataFrame) 
     season = requests["season"].to_numpy(np.int64)
     lags = method_lags(method, target - last, season)
     per_series = requests.drop_duplicates("series_id").set_index("series_id")["season"]
+    # Series without a request have no season here (the backtest passes every series' actuals).
+    history = history.loc[history["series_id"].isin(per_series.index)]
     history_season = per_series.reindex(history["series_id"]).to_numpy(np.int64)
     phases = (target % season, history["period"].to_numpy(np.int64) % history_season)
     return _latest_at_or_before(history, series_id, target - lags, phases)

@@ -62,8 +62,9 @@ def detection_window(config: Config) -> WindowConfig:
 @dataclass
 class _Source:
     """The window's pairs as `p`: joins after `FROM pairs p`, the WHERE condition, its
-    parameters, and for a `points` window the N latest periods to keep (the clause selects a
-    superset of them). `probe` joins child rows by a lookup per pair (PostgreSQL)."""
+    parameters, and for a `points` window the N latest periods to keep (the clause selects
+    each key's periods from its N-th latest on). `probe` joins child rows by a lookup per
+    pair (PostgreSQL)."""
 
     joins: str
     where: str
@@ -149,16 +150,18 @@ def _window_source(
         where = f"p.target_at > :since AND p.target_at <= :now AND p.model_id IN {models}{page}"
         return _Source(chosen, where, {"since": since, "now": now, **params}, probe=probe)
     points = int(window.points or 1)
-    last = read_frame(
+    # The first of each key's N latest periods, however far back a gap in its targets puts
+    # it (a span of a fixed number of periods would cut the window short after a gap).
+    first = read_frame(
         connection,
-        f"SELECT p.series_id, p.model_id, MAX(p.target_period) AS last FROM pairs p {chosen}"
-        f"WHERE p.target_at <= :now AND p.model_id IN {models}{page} "
-        "GROUP BY p.series_id, p.model_id",
-        {"now": now, **params},
+        "SELECT series_id, model_id, MIN(target_period) - 1 AS low FROM ("
+        "SELECT p.series_id, p.model_id, p.target_period, DENSE_RANK() OVER (PARTITION BY "
+        "p.series_id, p.model_id ORDER BY p.target_period DESC) AS period_rank FROM pairs p "
+        f"{chosen}WHERE p.target_at <= :now AND p.model_id IN {models}{page}) ranked "
+        "WHERE period_rank <= :points GROUP BY series_id, model_id",
+        {"now": now, "points": points, **params},
     )
-    # Three times the span leaves room for gaps; the exact N latest periods are kept later.
-    last["low"] = last["last"] - 3 * points
-    staged = stage_keys(connection, "detect_last", last[["series_id", "model_id", "low"]])
+    staged = stage_keys(connection, "detect_last", first[["series_id", "model_id", "low"]])
     joins = (
         f"JOIN {staged} k ON k.series_id = p.series_id "
         "AND k.model_id = p.model_id AND p.target_period > k.low "

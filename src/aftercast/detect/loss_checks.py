@@ -28,6 +28,19 @@ from aftercast.detect.bias import tabular_cusum, tracking_signal
 from aftercast.detect.profiles import KEY, padded
 
 
+def _mean_and_variance(rows: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per row (NaN is padding): mean, sample variance (ddof 1) and count; NaN below two values.
+
+    Written out rather than ``np.nanvar``, which warns for every row of fewer than two values:
+    a key with a single recent target is common and is no reason for a warning each cycle.
+    """
+    n = (~np.isnan(rows)).sum(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.nansum(rows, axis=1) / n
+        variance = np.nansum((rows - mean[:, None]) ** 2, axis=1) / (n - 1)
+    return mean, np.where(n >= 2, variance, np.nan), n
+
+
 def welch_greater_pvalue(recent: np.ndarray, baseline: np.ndarray) -> np.ndarray:
     """One-sided Welch t test per row that mean(recent) > mean(baseline); NaN is padding.
 
@@ -38,11 +51,10 @@ def welch_greater_pvalue(recent: np.ndarray, baseline: np.ndarray) -> np.ndarray
     >>> welch_greater_pvalue(np.array([[2.0, 3.0, 2.5, 3.5]]), np.array([[1.0, 1.5, 1.0, 1.5]]))
     array([0.0061044])
     """
-    n_r, n_b = (~np.isnan(recent)).sum(axis=1), (~np.isnan(baseline)).sum(axis=1)
+    (m_r, s_r, n_r), (m_b, s_b, n_b) = _mean_and_variance(recent), _mean_and_variance(baseline)
     with np.errstate(invalid="ignore", divide="ignore"):
-        v_r = np.nanvar(recent, axis=1, ddof=1) / n_r
-        v_b = np.nanvar(baseline, axis=1, ddof=1) / n_b
-        t = (np.nanmean(recent, axis=1) - np.nanmean(baseline, axis=1)) / np.sqrt(v_r + v_b)
+        v_r, v_b = s_r / n_r, s_b / n_b
+        t = (m_r - m_b) / np.sqrt(v_r + v_b)
         df = (v_r + v_b) ** 2 / (v_r**2 / (n_r - 1) + v_b**2 / (n_b - 1))
     valid = (n_r >= 2) & (n_b >= 2) & (v_r + v_b > 0)
     return np.where(valid, stats.t.sf(t, df), np.nan)

@@ -9,7 +9,7 @@ part without the store: replay calls it day by day with baselines held in memory
 False discoveries: with `detection.families: series` (the default) the tests of one series
 (every model, horizon bucket, level and detection) form a family; families are selected by
 Benjamini-Hochberg over their Simes p-values and tests within a selected family flagged by BH
-at q R / M (`detect.families.two_level_fdr`). With `families: none` each detection gets one
+at q R / M (`detect.families.two_level_fdr`). With `families: detection` each detection gets one
 plain Benjamini-Hochberg over all its tests across the fleet.
 """
 
