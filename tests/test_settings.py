@@ -9,11 +9,17 @@ the lowest-level aftercast modules.
 from __future__ import annotations
 
 import ast
+import re
+from importlib import resources
 from pathlib import Path
 from typing import get_args
 
+import yaml
+from pydantic import BaseModel
+
 import aftercast.settings
 from aftercast.alerts.rules import DETECTIONS
+from aftercast.config import Config, parse_config
 from aftercast.notify import CHANNELS
 from aftercast.settings.alerts import Detection
 from aftercast.settings.channels import ChannelConfig
@@ -54,3 +60,30 @@ def test_every_configurable_type_has_its_implementation() -> None:
 
 def test_every_detection_a_rule_can_name_is_described() -> None:
     assert set(get_args(Detection)) == set(DETECTIONS)
+
+
+def _section_block(text: str, section: str) -> str:
+    """The starter's lines of one top-level section, up to the next top-level key."""
+    lines = text.split("\n")
+    start = next(i for i, line in enumerate(lines) if line.startswith(f"{section}:"))
+    block = []
+    for line in lines[start + 1 :]:
+        if line and not line.startswith((" ", "#")):
+            break
+        block.append(line)
+    return "\n".join(block)
+
+
+def test_starter_shows_every_key_and_reads_as_the_defaults() -> None:
+    """Every section of the config and every key of a section is in the starter (written or
+    commented), and what is written is the built-in default, as its header says."""
+    text = resources.files("aftercast").joinpath("starter.yaml").read_text(encoding="utf-8")
+    for section, field in Config.model_fields.items():
+        assert re.search(rf"^{section}:", text, re.MULTILINE), section
+        model = field.annotation
+        if not (isinstance(model, type) and issubclass(model, BaseModel)):
+            continue  # a list of entries: its keys are shown by the commented examples
+        block = _section_block(text, section)
+        for key in model.model_fields:
+            assert re.search(rf"^\s*#?\s*{key}:", block, re.MULTILINE), f"{section}.{key}"
+    assert parse_config(yaml.safe_load(text)).model_dump() == Config().model_dump()
