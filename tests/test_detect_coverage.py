@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pandas as pd
 import pytest
 import statsmodels.api as sm
 from scipy import stats
@@ -18,6 +19,7 @@ from aftercast.detect.coverage import (
     widening_factor,
     widening_factor_by_group,
 )
+from aftercast.detect.coverage_checks import coverage_fix
 
 
 def test_binomial_pvalue_equals_scipy_binomtest_on_random_cases() -> None:
@@ -192,3 +194,14 @@ def test_widening_factor_recovers_an_understated_spread() -> None:
     np.testing.assert_allclose(factor, 2.0, atol=0.05)
     assert widening_factor_by_group([1.0], [0.0], 0.8, [1]).tolist()[1] == math.inf
     assert np.isnan(widening_factor_by_group([1.0], [1.0], 0.8, [1], n_groups=3)[[0, 2]]).all()
+
+
+def test_the_suggested_fix_never_quotes_a_factor_of_zero_or_nan() -> None:
+    """Outcomes that sit on the intervals' centre give an empirical factor of 0 (the level
+    quantile of |y - centre| / half-width): "narrow by a factor of 0.00" would read as a fault,
+    and a missing factor (zero-width intervals) as "nan"; both get words of their own."""
+    texts = coverage_fix(pd.Series([80.0, 95.0, 80.0, 80.0]), pd.Series([1.5, 0.8, 0.001, np.nan]))
+    assert texts[0].startswith("widen the 80% intervals' half-width by a factor of 1.50")
+    assert texts[1].startswith("narrow the 95% intervals' half-width by a factor of 0.80")
+    assert "0.00" not in texts[2] and "fell on the 80% intervals' centre" in texts[2]
+    assert "nan" not in texts[3] and "no width" in texts[3]

@@ -19,7 +19,9 @@ from statsmodels.stats.multitest import multipletests
 
 from aftercast.detect.coverage_checks import coverage_findings
 from aftercast.detect.families import benjamini_hochberg_by_group, simes_by_group, two_level_fdr
+from aftercast.detect.gather import WindowData
 from aftercast.detect.loss_checks import benchmark_findings, bias_findings, welch_greater_pvalue
+from aftercast.detect.run import _benchmark_inputs
 
 RNG_SEED = 20260601
 
@@ -222,3 +224,30 @@ def test_benchmark_finding_skill_equals_sklearn_mae_ratio_and_flags_a_worse_mode
         )  # scikit-learn
         assert rows["ev_skill_mae"].iloc[row] == pytest.approx(expected)
     assert rows["p_value"].iloc[0] < 0.001 < rows["p_value"].iloc[1]
+    # The suggested fix states the same ratio in words (scikit-learn MAE against the benchmark's).
+    worse = -100 * (
+        1 - mean_absolute_error(zeros, model[0]) / mean_absolute_error(zeros, benchmark[0])
+    )
+    assert (
+        rows["ev_suggested_fix"]
+        .iloc[0]
+        .startswith(
+            f"MAE is {worse:.0f}% higher than benchmark:seasonal-naive's on the same targets"
+        )
+    )
+
+
+def test_interval_skill_is_missing_not_infinite_where_the_benchmark_scored_zero() -> None:
+    """Interval-score skill 1 - IS / IS_benchmark (the generic skill score) has no value where
+    the benchmark's interval score is 0: NaN, which the evidence shows as null, never inf."""
+    on = {"series_id": [1, 1], "issued_at": [0, 0], "target_at": [10, 20], "level": [80.0] * 2}
+    key = {"model_id": [7, 7], "bucket": ["1", "1"]}
+    hits = pd.DataFrame({**on, **key, "interval_score": [2.0, 4.0]})
+    benchmark_hits = pd.DataFrame({**on, "interval_score": [0.0, 0.0]})
+    pairs = pd.DataFrame(
+        {**on, **key, "target_period": [1, 2], "abs_error": [1.0, 1.0], "horizon": [1, 1]}
+    ).drop(columns="level")
+    benchmark = pairs[["series_id", "issued_at", "target_at", "abs_error"]]
+    data = WindowData(pairs, hits, benchmark, benchmark_hits)
+    _matched, skill = _benchmark_inputs(data)
+    assert np.isnan(skill["skill_interval_score_80"].iloc[0])

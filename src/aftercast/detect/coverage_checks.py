@@ -128,15 +128,7 @@ def coverage_findings(hits: pd.DataFrame, min_points: int) -> pd.DataFrame:
     evidence = _sequence_evidence(hits, rows)
     gap = 100.0 * pooled["coverage"] - rows["level"]
     factor = pooled["widening_factor"]
-    verb = np.where(factor >= 1.0, "widen", "narrow")
-    fix = (
-        verb + " the " + rows["level"].map("{:g}".format) + "% intervals' half-width by a factor "
-        "of "
-        + factor.map("{:.2f}".format)
-        + " to cover "
-        + rows["level"].map("{:g}".format)
-        + "% of the window's outcomes"
-    )
+    fix = coverage_fix(rows["level"], factor)
     out = pd.DataFrame(
         {
             "detection": rows["detection"],
@@ -161,3 +153,42 @@ def coverage_findings(hits: pd.DataFrame, min_points: int) -> pd.DataFrame:
         }
     )
     return out
+
+
+def coverage_fix(level: pd.Series, factor: pd.Series) -> pd.Series:
+    """The suggested fix for each coverage finding, from its level and widening factor.
+
+    A factor that rounds to 0 means at least `level`% of the outcomes fell on the intervals'
+    centre, so no factor is worth quoting ("narrow by a factor of 0.00" reads as a mistake);
+    a missing one (intervals of zero width) cannot be scaled at all.
+
+    >>> print(coverage_fix(pd.Series([80.0]), pd.Series([1.5])).iloc[0][:55])
+    widen the 80% intervals' half-width by a factor of 1.50
+    """
+    name = level.map("{:g}".format)
+    verb = pd.Series(np.where(factor >= 1.0, "widen", "narrow"), index=level.index)
+    scaled = (
+        verb
+        + " the "
+        + name
+        + "% intervals' half-width by a factor of "
+        + factor.map("{:.2f}".format)
+        + " to cover "
+        + name
+        + "% of the window's outcomes"
+    )
+    centred = (
+        "at least "
+        + name
+        + "% of the window's outcomes fell on the "
+        + name
+        + "% intervals' centre: they could be much narrower"
+    )
+    no_width = (
+        "the "
+        + name
+        + "% intervals have no width to scale: give them a width that covers "
+        + name
+        + "% of the outcomes"
+    )
+    return scaled.where(factor.round(2) > 0, centred).where(factor.notna(), no_width)

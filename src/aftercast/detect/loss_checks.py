@@ -165,9 +165,8 @@ def benchmark_findings(
     with np.errstate(invalid="ignore"):
         model_mae, benchmark_mae = np.nanmean(model, axis=1), np.nanmean(reference, axis=1)
     skill = skill_score(model_mae, benchmark_mae)
-    fix = (
-        "MAE is " + pd.Series(-100 * skill).map("{:.0f}".format) + f"% higher than {benchmark}'s "
-        "on the same targets: check the model against recent data, or use the benchmark meanwhile"
+    fix = mae_against_benchmark(skill, benchmark) + (
+        " on the same targets: check the model against recent data, or use the benchmark meanwhile"
     )
     extra = keys[KEY].merge(interval_skill, on=KEY, how="left")
     return _rows(
@@ -185,6 +184,27 @@ def benchmark_findings(
         **{f"ev_{c}": extra[c].to_numpy() for c in extra.columns if c not in KEY},
         ev_suggested_fix=fix.to_numpy(),
     )
+
+
+def mae_against_benchmark(skill: np.ndarray, benchmark: str) -> pd.Series:
+    """'MAE is 12% higher than <benchmark>'s', from the MAE skill (1 - MAE / benchmark MAE):
+    'lower' for a positive skill, 'the same as' where it rounds to 0 (never '-0% higher'), and
+    no percentage where the skill is undefined (the benchmark's MAE is 0).
+
+    >>> for text in mae_against_benchmark(np.array([-0.12, 0.001, 0.3, np.nan]), "naive"):
+    ...     print(text)
+    MAE is 12% higher than naive's
+    MAE is the same as naive's
+    MAE is 30% lower than naive's
+    MAE is above naive's, which is 0
+    """
+    percent = pd.Series(np.round(-100 * np.asarray(skill, dtype=float)))
+    size = percent.abs().map("{:.0f}".format)
+    higher = "MAE is " + size + f"% higher than {benchmark}'s"
+    lower = "MAE is " + size + f"% lower than {benchmark}'s"
+    same = pd.Series(f"MAE is the same as {benchmark}'s", index=percent.index)
+    texts = higher.where(percent > 0, lower.where(percent < 0, same))
+    return texts.where(percent.notna(), f"MAE is above {benchmark}'s, which is 0")
 
 
 def bias_findings(

@@ -22,6 +22,7 @@ import pandas as pd
 from sqlalchemy import Engine
 
 from aftercast.config import Config
+from aftercast.detect.accuracy import skill_score
 from aftercast.detect.baselines import load_baselines, refresh_baselines
 from aftercast.detect.coverage_checks import coverage_findings
 from aftercast.detect.families import benjamini_hochberg_by_group, two_level_fdr
@@ -92,7 +93,10 @@ def _benchmark_inputs(data: WindowData) -> tuple[pd.DataFrame, pd.DataFrame]:
         suffixes=("", "_b"),
     )
     means = hits.groupby([*KEY, "level"])[["interval_score", "interval_score_b"]].mean()
-    skill = (1.0 - means["interval_score"] / means["interval_score_b"]).unstack("level")
+    # NaN, not inf, where the benchmark's intervals scored 0 (they held every outcome at no width).
+    skill = pd.Series(
+        skill_score(means["interval_score"], means["interval_score_b"]), index=means.index
+    ).unstack("level")
     skill.columns = [f"skill_interval_score_{level:g}" for level in skill.columns]
     return matched, skill.reset_index()
 
