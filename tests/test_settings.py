@@ -87,3 +87,11 @@ def test_starter_shows_every_key_and_reads_as_the_defaults() -> None:
         for key in model.model_fields:
             assert re.search(rf"^\s*#?\s*{key}:", block, re.MULTILINE), f"{section}.{key}"
     assert parse_config(yaml.safe_load(text)).model_dump() == Config().model_dump()
+
+
+def test_example_config_is_the_starter() -> None:
+    """config/aftercast.example.yaml is what `init --write-config` writes, byte for byte, so the
+    file the README links to never falls behind the built-in starter."""
+    starter = resources.files("aftercast").joinpath("starter.yaml").read_text(encoding="utf-8")
+    example = Path(__file__).resolve().parents[1] / "config" / "aftercast.example.yaml"
+    assert example.read_text(encoding="utf-8") == starter
