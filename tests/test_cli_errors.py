@@ -189,3 +189,49 @@ def test_ingest_json_of_several_files_keeps_the_unreadable_one(
     assert [f.get("error") for f in out["files"]] == ["nope.csv: no such file", None]
     assert (out["accepted"], out["rejected"]) == (1, 1)
     assert out["rejected_reasons"] == {"unparseable observed_at": 1}
+
+
+def _parquet(path: Path, columns: list[str]) -> None:
+    import pandas as pd
+
+    pd.DataFrame({name: ["x"] for name in columns}).to_parquet(path)
+
+
+@pytest.mark.parametrize(
+    ("name", "make", "found"),
+    [
+        (
+            "m.csv",
+            lambda p: write_csv(p, "sid,observed_at,value", "s,2026-01-01,1"),
+            "sid, observed_at, value",
+        ),
+        (
+            "m.jsonl",
+            lambda p: p.write_text('{"series":"s","observed_at":"2026-01-01","value":1}\n'),
+            "series, observed_at, value",
+        ),
+        # A name with a space around it looks right unless quoted.
+        (
+            "m.parquet",
+            lambda p: _parquet(p, ["series_id ", "observed_at", "value"]),
+            "'series_id ', observed_at, value",
+        ),
+        (
+            "w.csv",
+            lambda p: write_csv(p, ",".join(f"c{i}" for i in range(25)), ",".join("1" * 25)),
+            ", ".join(f"c{i}" for i in range(20)) + ", and 5 more",
+        ),
+    ],
+)
+def test_missing_column_error_lists_the_columns_found(
+    name: str,
+    make: Callable[[Path], object],
+    found: str,
+    workdir: Path,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    make(workdir / name)
+    assert main(["ingest", "actuals", name]) == 1
+    (line,) = capsys.readouterr().err.splitlines()
+    assert line.startswith(f"aftercast: error: {name}: missing required column")
+    assert line.endswith(f" (columns found: {found})")

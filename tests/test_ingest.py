@@ -300,3 +300,69 @@ def test_parquet_and_jsonl_read_like_csv(engine: Engine, config: Config, tmp_pat
     bad = ingest_path(engine, config, "actuals", tmp_path / "bad.jsonl")
     assert (bad.accepted, bad.rejected) == (1, 1)
     assert bad.rejected_reasons == {"not a JSON object": 1}
+
+
+def _quarantined(engine: Engine) -> list[tuple[int, str]]:
+    with engine.connect() as connection:
+        rows = connection.execute(text("SELECT row_number, reason FROM quarantine")).all()
+    return sorted((int(number), str(reason)) for number, reason in rows)
+
+
+def test_local_times_the_clock_change_skips_or_repeats_are_rejected_saying_so(
+    engine: Engine, store_url: str, tmp_path: Path
+) -> None:
+    from tests.conftest import make_config
+
+    # UK clocks in 2026 (gov.uk "When do the clocks change?", the IANA tz database): forward at
+    # 01:00 GMT on 29 March (01:30 local never happens), back at 02:00 BST on 25 October (01:30
+    # local happens twice).
+    config = make_config(store_url, series_defaults={"timezone": "Europe/London"})
+    path = write_csv(
+        tmp_path / "a.csv",
+        ACTUAL_HEADER,
+        "gap,2026-03-29T01:30,1",
+        "twice,2026-10-25T01:30:00,2",
+        "written,2026-10-25T01:30+01:00,3",  # with its offset: one instant, kept
+        "later,2026-03-30T01:30,4",  # an ordinary night: kept
+        "bad,29/03/2026,5",
+    )
+    report = ingest_path(engine, config, "actuals", path)
+    assert (report.accepted, report.rejected) == (2, 3)
+    assert report.rejected_reasons == {
+        "nonexistent local observed_at": 1,
+        "ambiguous local observed_at": 1,
+        "unparseable observed_at": 1,
+    }
+    london = "Europe/London (the clocks go {}); give the time with its UTC offset"
+    assert _quarantined(engine) == [
+        (
+            1,
+            "nonexistent local observed_at: '2026-03-29T01:30' does not exist in "
+            + london.format("forward over it"),
+        ),
+        (
+            2,
+            "ambiguous local observed_at: '2026-10-25T01:30:00' happens twice in "
+            + london.format("back over it"),
+        ),
+        (5, "unparseable observed_at: '29/03/2026'"),
+    ]
+
+    # Parquet keeps naive datetimes as datetimes, not text: the same reasons.
+    frame = pd.DataFrame(
+        {
+            "series_id": ["p", "p"],
+            "model": ["m", "m"],
+            "issued_at": pd.to_datetime(["2026-03-20T00:00", "2026-03-20T00:00"]),
+            "target_at": pd.to_datetime(["2026-03-29T01:15", "2026-03-30T01:15"]),
+            "point": [1.0, 2.0],
+        }
+    )
+    frame.to_parquet(tmp_path / "f.parquet")
+    forecasts = ingest_path(engine, config, "forecasts", tmp_path / "f.parquet")
+    assert (forecasts.accepted, forecasts.rejected) == (1, 1)
+    assert forecasts.rejected_reasons == {"nonexistent local target_at": 1}
+    assert forecasts.examples == [
+        f"{tmp_path / 'f.parquet'} row 1: nonexistent local target_at: '2026-03-29 01:15:00' "
+        "does not exist in " + london.format("forward over it")
+    ]

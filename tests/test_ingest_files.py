@@ -212,7 +212,8 @@ def test_text_that_is_not_unicode_and_a_season_too_long_are_rejected_not_errors(
     assert (report.accepted, report.rejected) == (1, 2)
     assert report.examples == [
         "POST /v1/series row 1: series_id is not Unicode text",
-        "POST /v1/series row 2: season is not a whole number from 1 to 1000000",
+        "POST /v1/series row 2: season is not a whole number from 1 to 1000000: "
+        "'100000000000000000000'",
     ]
     path = tmp_path / "actuals.jsonl"
     path.write_text(

@@ -149,3 +149,33 @@ def test_jsonl_keeps_every_digit_of_the_csv(
         for column in ("point", "q_90"):
             if column in values:
                 assert row_json[column] == pytest.approx(values[column], rel=1e-15, abs=0)
+
+
+def test_csv_of_a_store_without_pairs_is_its_header_row(
+    store_url: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.chdir(tmp_path)
+    monkeypatch.delenv("AFTERCAST_CONFIG", raising=False)
+    (tmp_path / "c.yaml").write_text(f"store:\n  url: {store_url}\n")
+    export = ["--config", "c.yaml", "scores", "export"]
+    assert main([*export, "-o", "empty.csv"]) == 0
+    assert main([*export, "--format", "jsonl", "-o", "empty.jsonl"]) == 0
+    # Then one pair, for the header a file with rows has (the same reader, csv.reader).
+    write_csv(
+        tmp_path / "f.csv",
+        "series_id,model,issued_at,target_at,point",
+        "s,m,2026-01-01,2026-01-02,1",
+    )
+    write_csv(tmp_path / "a.csv", "series_id,observed_at,value", "s,2026-01-02,2")
+    for kind in ("forecasts", "actuals"):
+        assert main(["--config", "c.yaml", "ingest", kind, f"{kind[0]}.csv"]) == 0
+    assert main(["--config", "c.yaml", "cycle", "--now", "2026-01-10T00:00:00Z"]) == 0
+    assert main([*export, "-o", "one.csv"]) == 0
+    with (
+        open("empty.csv", newline="", encoding="utf-8") as empty,
+        open("one.csv", newline="", encoding="utf-8") as one,
+    ):
+        (header,) = list(csv.reader(empty))
+        assert [header] == list(csv.reader(one))[:1]
+    assert "series_id" in header and "error" in header
+    assert Path("empty.jsonl").read_bytes() == b""  # JSON Lines: no pairs, no lines

@@ -111,8 +111,11 @@ def test_every_cycle_applies_the_entries_and_logs_what_it_cannot(
         run_cycle(engine, changed, parse_instant("2026-06-03T00:00:00Z"))
     assert stored(engine)["labels"] == {"team": "planning"}
     assert stored(engine)["season"] == 7
-    (line,) = [r.getMessage() for r in caplog.records if r.name == "aftercast.cycle"]
-    assert line.startswith(f"series[1].season: series {KEY!r} is stored with 7 and has data")
+    (record,) = [r for r in caplog.records if r.name == "aftercast.cycle"]
+    assert record.getMessage() == "series entry not applied"
+    fields = record.aftercast_fields  # type: ignore[attr-defined]
+    assert fields["key"] == "series[1].season"
+    assert fields["detail"].startswith(f"series {KEY!r} is stored with 7 and has data")
 
 
 def test_init_applies_the_entries_and_warns_in_one_line_each(

@@ -14,12 +14,14 @@ from importlib import resources
 from pathlib import Path
 from typing import get_args
 
+import pytest
 import yaml
 from pydantic import BaseModel
 
 import aftercast.settings
 from aftercast.alerts.rules import DETECTIONS
 from aftercast.config import Config, parse_config
+from aftercast.errors import ConfigError
 from aftercast.notify import CHANNELS
 from aftercast.settings.alerts import Detection
 from aftercast.settings.channels import ChannelConfig
@@ -95,3 +97,38 @@ def test_example_config_is_the_starter() -> None:
     starter = resources.files("aftercast").joinpath("starter.yaml").read_text(encoding="utf-8")
     example = Path(__file__).resolve().parents[1] / "config" / "aftercast.example.yaml"
     assert example.read_text(encoding="utf-8") == starter
+
+
+WINDOW_ERRORS = {
+    "an extra window named like the default": (
+        {"window": {"name": "recent", "days": 28}, "windows": [{"name": "recent", "days": 7}]},
+        "config key windows[0].name: window name 'recent' is already used by window.name",
+    ),
+    "two extra windows of one name": (
+        {
+            "windows": [
+                {"name": "q", "days": 91},
+                {"name": "long", "days": 9},
+                {"name": "q", "points": 5},
+            ]
+        },
+        "config key windows[2].name: window name 'q' is already used by windows[0].name",
+    ),
+    "detection names no window": (
+        {"windows": [{"name": "quarter", "days": 91}], "detection": {"window": "quartr"}},
+        "config key detection.window: no window is named 'quartr' (configured: recent, quarter)",
+    ),
+}
+
+
+@pytest.mark.parametrize("case", list(WINDOW_ERRORS))
+def test_window_names_are_unique_and_detection_names_a_configured_one(case: str) -> None:
+    raw, message = WINDOW_ERRORS[case]
+    with pytest.raises(ConfigError) as error:
+        parse_config(raw, "c.yaml")
+    assert str(error.value).startswith(f"c.yaml: {message}")
+
+
+def test_detection_window_may_name_any_configured_window() -> None:
+    raw = {"windows": [{"name": "quarter", "days": 91}], "detection": {"window": "quarter"}}
+    assert parse_config(raw).detection.window == "quarter"

@@ -10,10 +10,13 @@ same file (the issue's requirement), so that is checked against `ingest_path` on
 from __future__ import annotations
 
 import hashlib
+import logging
 import os
 import sqlite3
 import time
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import pytest
 from sqlalchemy import Engine, text
@@ -99,6 +102,72 @@ def test_folder_moves_done_and_unreadable_files_and_keeps_going(
     assert sorted(p.name for p in (drop / "failed").iterdir()) == ["bad.csv"]
     assert not list(drop.glob("*.csv"))
     assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 1
+
+
+def _aged_drop(folder: Path, *names: str) -> Path:
+    """A drop folder with one actual per file, the files in `names`' order of age."""
+    drop = folder / "drop"
+    drop.mkdir()
+    for age, name in enumerate(reversed(names), start=10):
+        write_csv(drop / name, ACTUAL_HEADER, f"{name},2026-01-01,1")
+        os.utime(drop / name, (time.time() - age, time.time() - age))
+    return drop
+
+
+def _vanishing(read: Callable[..., Any], name: str) -> Callable[..., Any]:
+    """`read`, except that the file called `name` is removed first (another process took it)."""
+
+    def wrapped(path: Path, *args: Any) -> Any:
+        if path.name == name:
+            path.unlink()
+        return read(path, *args)
+
+    return wrapped
+
+
+def test_folder_files_that_vanish_are_warned_of_and_the_rest_are_read(
+    engine: Engine,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+    caplog: pytest.LogCaptureFixture,
+) -> None:
+    import aftercast.sources.folder as folder
+
+    drop = _aged_drop(tmp_path, "a.csv", "early.csv", "late.csv", "z.csv")
+    # Removed between listing and hashing, and between hashing and reading.
+    monkeypatch.setattr(folder, "content_hash", _vanishing(folder.content_hash, "early.csv"))
+    monkeypatch.setattr(folder, "read_chunks", _vanishing(folder.read_chunks, "late.csv"))
+    config = _config(engine, _folder(drop, after="move"))
+    with caplog.at_level(logging.WARNING, logger="aftercast.sources"):
+        result = pull_source(engine, config, config.sources[0])
+    assert result is not None and result.ok, result
+    assert (result.batches, result.batches_failed) == (2, 2)
+    assert sorted(p.name for p in (drop / "done").iterdir()) == ["a.csv", "z.csv"]
+    assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 2
+    warned = [r.aftercast_fields for r in caplog.records if r.levelno == logging.WARNING]  # type: ignore[attr-defined]
+    not_read = {f["batch"]: f["error"] for f in warned if f.get("source") == "drop"}
+    assert (
+        not_read[str(drop / "early.csv")]
+        == f"{drop / 'early.csv'}: cannot read (No such file or directory)"
+    )
+    assert str(drop / "late.csv") in not_read
+
+
+def test_folder_file_without_read_permission_is_skipped_until_readable(
+    engine: Engine, tmp_path: Path
+) -> None:
+    drop = _aged_drop(tmp_path, "locked.csv", "open.csv")
+    (drop / "locked.csv").chmod(0)
+    if os.access(drop / "locked.csv", os.R_OK):
+        pytest.skip("this user reads files without read permission (root)")
+    config = _config(engine, _folder(drop))
+    result = pull_source(engine, config, config.sources[0])
+    assert result is not None and result.ok and (result.batches, result.batches_failed) == (1, 1)
+    assert result.problems == [f"{drop / 'locked.csv'}: cannot read (Permission denied)"]
+    (drop / "locked.csv").chmod(0o644)
+    again = pull_source(engine, config, config.sources[0])
+    assert again is not None and (again.batches, again.batches_failed) == (1, 0)
+    assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 2
 
 
 def test_folder_leaves_files_still_being_written(engine: Engine, tmp_path: Path) -> None:

@@ -103,6 +103,12 @@ def test_times_get_the_reasons_of_the_plain_check() -> None:
     expected = Reasons(frame.index)
     raw = frame["t"]
     expected.flag(raw.isna() | (raw.astype("string").str.strip() == ""), "missing t")
+    # Berlin's clocks skip 02:00-03:00 on 29 March 2026 (IANA tz database, Europe/Berlin).
+    expected.flag(
+        raw == "2026-03-29T02:30:00",
+        "nonexistent local t: '2026-03-29T02:30:00' does not exist in Europe/Berlin (the clocks "
+        "go forward over it); give the time with its UTC offset",
+    )
     unparseable = "unparseable t: '" + raw.astype("string").fillna("") + "'"
     expected.flag(time_values(frame, "t", zones, Reasons(frame.index)).isna(), unparseable)
     reasons = Reasons(frame.index)

@@ -149,6 +149,27 @@ class Config(Strict):
                 raise ValueError(f"horizon bucket {bucket!r} must look like '1' or '2-7'")
         return value
 
+    @model_validator(mode="after")
+    def _windows_named_once(self) -> Config:
+        # Raised as ConfigError, not ValueError, so the line names the exact key path: a
+        # check across sections would otherwise be reported at the top level.
+        keys = ["window.name", *(f"windows[{i}].name" for i in range(len(self.windows)))]
+        first: dict[str, str] = {}
+        for key, window in zip(keys, self.all_windows(), strict=True):
+            if window.name in first:
+                raise ConfigError(
+                    f"config key {key}: window name {window.name!r} is already used by "
+                    f"{first[window.name]}; window names must be unique"
+                )
+            first[window.name] = key
+        wanted = self.detection.window
+        if wanted is not None and wanted not in first:
+            raise ConfigError(
+                f"config key detection.window: no window is named {wanted!r} "
+                f"(configured: {', '.join(first)})"
+            )
+        return self
+
     def all_windows(self) -> list[WindowConfig]:
         """The default window first, then any extra named windows."""
         return [self.window, *self.windows]

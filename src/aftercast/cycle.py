@@ -20,7 +20,7 @@ from aftercast.alerts.stage import update_alerts
 from aftercast.benchmarks import make_benchmarks
 from aftercast.config import Config
 from aftercast.detect.run import detect
-from aftercast.logs import log_event
+from aftercast.logs import cycle_scope, log_event
 from aftercast.matching import match
 from aftercast.notify.deliver import deliver_due
 from aftercast.sources.pull import pull_all
@@ -66,6 +66,13 @@ def _close_cycle(engine: Engine, report: CycleReport) -> None:
         )
 
 
+def apply_series_entries(engine: Engine, config: Config) -> None:
+    """Apply the config's `series:` entries; each one that cannot be is a warning naming its key."""
+    for line in sync_series_entries(engine, config):
+        key, _, detail = line.partition(": ")
+        log_event(log, "series entry not applied", logging.WARNING, key=key, detail=detail)
+
+
 def run_cycle(
     engine: Engine,
     config: Config,
@@ -84,12 +91,26 @@ def run_cycle(
     now = int(time.time()) if now is None else now
     started = time.perf_counter()
     report = CycleReport(cycle_id=_open_cycle(engine, now), now=now)
+    with cycle_scope(report.cycle_id):  # every warning on the way names this cycle
+        _run_stages(engine, config, report, series_ids, touched, fleet)
+    report.seconds = time.perf_counter() - started
+    _close_cycle(engine, report)
+    return report
 
+
+def _run_stages(
+    engine: Engine,
+    config: Config,
+    report: CycleReport,
+    series_ids: np.ndarray | None,
+    touched: pd.DataFrame | None,
+    fleet: bool,
+) -> None:
+    now = report.now
     if fleet:
         mark = time.perf_counter()
         # Before the sources, so rows pulled now meet the series settings the config gives.
-        for line in sync_series_entries(engine, config):
-            log_event(log, line, level=logging.WARNING)
+        apply_series_entries(engine, config)
         pull_all(engine, config, now, report.cycle_id)
         report.stages["sources"] = time.perf_counter() - mark
 
@@ -102,7 +123,7 @@ def run_cycle(
     report.queued, report.pairs_scored = matched.queued, matched.pairs_scored
     report.stages["match"] = time.perf_counter() - mark
     if not fleet:
-        return _finish(engine, report, started)
+        return
 
     mark = time.perf_counter()
     refresh_windows(engine, config, now, matched.touched if touched is None else touched)
@@ -119,10 +140,3 @@ def run_cycle(
     mark = time.perf_counter()
     report.delivery = deliver_due(engine, config).as_json()
     report.stages["notify"] = time.perf_counter() - mark
-    return _finish(engine, report, started)
-
-
-def _finish(engine: Engine, report: CycleReport, started: float) -> CycleReport:
-    report.seconds = time.perf_counter() - started
-    _close_cycle(engine, report)
-    return report

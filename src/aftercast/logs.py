@@ -83,6 +83,46 @@ class JsonFormatter(logging.Formatter):
         return json.dumps(line, ensure_ascii=False, allow_nan=False, default=str)
 
 
+class TextFormatter(logging.Formatter):
+    """One plain line per warning for a person at a terminal: `aftercast: warning: ...`.
+
+    The line starts with what it is about (a config key, or a source and its file), as every
+    error line of the command line does, then the reason; never a traceback.
+    """
+
+    def format(self, record: logging.LogRecord) -> str:
+        fields = getattr(record, _FIELDS, None) or {}
+        about = [str(fields["key"])] if fields.get("key") else []
+        if fields.get("source"):
+            about.append(f"source {fields['source']!r}")
+        reason = fields.get("error") or fields.get("detail")
+        if reason is None and record.exc_info and record.exc_info[0] is not None:
+            reason = f"{record.exc_info[0].__name__}: {record.exc_info[1]}"
+        text = ": ".join([*about, str(reason or record.getMessage())])
+        level = "warning" if record.levelno == logging.WARNING else record.levelname.lower()
+        return f"aftercast: {level}: " + " ".join(text.splitlines())
+
+
+@contextmanager
+def warnings_to_stderr(as_json: bool, stream: IO[str] | None = None) -> Iterator[None]:
+    """While a one-shot command runs, its warnings go to standard error, never standard output.
+
+    Standard output holds only the command's result (`--json`: one JSON document), so a script
+    can read it whatever went wrong on the way. With `as_json` each warning is a JSON line
+    naming its source or config key; otherwise one plain line (`TextFormatter`).
+    """
+    handler = logging.StreamHandler(stream or sys.stderr)
+    handler.setLevel(logging.WARNING)
+    handler.setFormatter(JsonFormatter() if as_json else TextFormatter())
+    handler.addFilter(_CycleFilter())
+    logger = logging.getLogger("aftercast")
+    logger.addHandler(handler)
+    try:
+        yield
+    finally:
+        logger.removeHandler(handler)
+
+
 class _CycleFilter(logging.Filter):
     def filter(self, record: logging.LogRecord) -> bool:
         if getattr(record, "cycle_id", None) is None:

@@ -142,6 +142,38 @@ def _localise(naive: pd.Series, timezone: pd.Series) -> pd.Series:
     return out
 
 
+def daylight_saving_faults(values: pd.Series, timezone: pd.Series) -> pd.Series:
+    """Why each time without an offset has no single instant in its zone; NA for the others.
+
+    "nonexistent" for a local time skipped when the clocks go forward, "ambiguous" for one that
+    happens twice when they go back (the two cases `parse_times` leaves NA on purpose, as
+    pandas' `tz_localize` does with `nonexistent="NaT"` and `ambiguous="NaT"`). Meant for the
+    few rows that failed to parse, so it runs per row's zone without caring for speed.
+
+    >>> zone = pd.Series(["Europe/London"] * 3)
+    >>> times = pd.Series(["2026-03-29T01:30", "2026-10-25T01:30", "2026-10-25T03:30"])
+    >>> daylight_saving_faults(times, zone).tolist()
+    ['nonexistent', 'ambiguous', <NA>]
+    """
+    out = pd.Series(pd.NA, index=values.index, dtype="string")
+    if pd.api.types.is_datetime64_any_dtype(values):
+        if getattr(values.dt, "tz", None) is not None:
+            return out
+        naive = values
+    else:
+        text = values.astype("string").str.strip()
+        naive = pd.to_datetime(text.where(~_has_offset(text)), errors="coerce", format="ISO8601")
+    for zone, index in timezone.groupby(timezone, sort=False).groups.items():
+        local = naive.loc[index]
+        exact = local.dt.tz_localize(str(zone), ambiguous="NaT", nonexistent="NaT").isna()
+        # Shifting a skipped time forward succeeds: what stays NaT is ambiguous.
+        twice = local.dt.tz_localize(str(zone), ambiguous="NaT", nonexistent="shift_forward")
+        failed = local.notna() & exact
+        out.loc[index[failed.to_numpy()]] = "nonexistent"
+        out.loc[index[(failed & twice.isna()).to_numpy()]] = "ambiguous"
+    return out
+
+
 def _epoch(parsed: pd.Series) -> pd.Series:
     """Whole epoch seconds of tz-aware datetimes, NA for NaT (any datetime resolution)."""
     seconds = (parsed - pd.Timestamp(0, tz="UTC")) // pd.Timedelta(seconds=1)

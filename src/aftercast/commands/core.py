@@ -21,6 +21,7 @@ from aftercast.config import Config, load_config
 from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, InputFileError
 from aftercast.ingest import IngestReport, ingest_path
+from aftercast.logs import warnings_to_stderr
 from aftercast.periods import iso_texts, parse_instant
 from aftercast.store.catalog import sync_series_entries
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
@@ -128,7 +129,8 @@ def _totals(rows: list[dict[str, object]]) -> dict[str, object]:
 
 def cmd_cycle(args: argparse.Namespace) -> int:
     config = load_config(args.config)
-    report = run_cycle(open_store(config), config, _now(args.now))
+    with warnings_to_stderr(args.json):
+        report = run_cycle(open_store(config), config, _now(args.now))
     if args.json:
         print_json(report.as_json())
     else:

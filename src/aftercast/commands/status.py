@@ -23,11 +23,12 @@ from typing import Any
 
 from rich.console import Console
 from rich.table import Table
+from sqlalchemy import Engine, text
 
 from aftercast.commands.core import open_store
 from aftercast.config import load_config
 from aftercast.errors import AftercastError
-from aftercast.periods import parse_instant
+from aftercast.periods import parse_instant, to_iso
 from aftercast.report import EXTRAS, MEASURES, NESTED, SORTS, StatusQuery, open_status
 from aftercast.window_store import find_window
 
@@ -95,9 +96,46 @@ def cmd_status(args: argparse.Namespace) -> int:
             _write_json(result.rows)
         elif args.csv:
             _write_csv(result.rows, result.names, bool(buckets))
+        elif result.total == 0:  # an empty table would not say why
+            print(f"aftercast: nothing to show: {_why_empty(engine, query, args)}", file=sys.stderr)
         else:
             print_status_table(list(result.rows), total=result.total, sort=query.sort)
     return 0
+
+
+def _why_empty(engine: Engine, query: StatusQuery, args: argparse.Namespace) -> str:
+    """Why the table has no rows: no pairs at all, none in the window, or the filters."""
+    window = query.window
+    where = f"window {window.name!r} at {to_iso(query.now)}"
+    low = None if window.days is None else query.now - round(window.days * 86_400)
+    with engine.connect() as connection:
+        first, last = connection.execute(
+            text("SELECT MIN(target_at), MAX(target_at) FROM pairs")
+        ).one()
+        inside = connection.execute(
+            text("SELECT 1 FROM pairs WHERE target_at <= :now AND target_at > :low LIMIT 1"),
+            {"now": query.now, "low": -(2**62) if low is None else low},
+        ).first()
+    if last is None:
+        return "no pairs yet: ingest forecasts and actuals, then run `aftercast cycle`"
+    if inside is None:
+        return (
+            f"no pairs in {where}: the pairs' targets run from {to_iso(first)} to "
+            f"{to_iso(last)} (see --now and --window)"
+        )
+    given = [
+        flag
+        for flag, value in (
+            ("--series", args.series),
+            ("--model", args.model),
+            ("--horizon", args.horizon),
+            ("--label", args.label),
+        )
+        if value
+    ]
+    if given:
+        return f"no rows in {where} match {', '.join(given)}"
+    return f"no rows in {where}"
 
 
 def _write_json(rows: Iterable[dict[str, Any]]) -> None:

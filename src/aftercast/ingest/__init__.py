@@ -223,6 +223,8 @@ def ingest_chunks(
         for chunk in chunks:
             if not seen_any:
                 require_columns(chunk.frame, REQUIRED[kind], source)
+                if kind == "series":
+                    series_rows.check_label_columns(chunk.frame.columns, source)
                 report.ignored_columns = [
                     c
                     for c in extra_columns(chunk.frame, KNOWN_COLUMNS[kind])

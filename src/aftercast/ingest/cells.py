@@ -13,7 +13,7 @@ import pandas as pd
 from pandas._libs import lib
 
 from aftercast.ingest.files import PRE_REJECTED
-from aftercast.periods import parse_times
+from aftercast.periods import daylight_saving_faults, parse_times
 
 # pandas keeps an all-integer column's values as integers and otherwise uses its float parse:
 # the two differ only from 2**53 on and for "-0", so then the column is parsed whole.
@@ -84,8 +84,36 @@ def time_values(frame: pd.DataFrame, column: str, zones: pd.Series, reasons: Rea
     if len(failed):
         text = failed.astype("string")
         reasons.flag(failed.isna() | (text.str.strip() == ""), f"missing {column}")
+        _flag_daylight_saving(failed, text, zones, column, reasons)
         reasons.flag(parsed.isna(), "unparseable " + column + ": '" + text.fillna("") + "'")
     return parsed
+
+
+def _flag_daylight_saving(
+    failed: pd.Series, text: pd.Series, zones: pd.Series, column: str, reasons: Reasons
+) -> None:
+    """Local times that the zone's clock change skips or repeats: not a parse failure."""
+    zone = zones.loc[failed.index].astype("string")
+    fault = daylight_saving_faults(failed, zone)
+    quoted = "'" + text.fillna("") + "' "
+    skipped = fault.eq("nonexistent").fillna(False).astype(bool)
+    reasons.flag(
+        skipped,
+        f"nonexistent local {column}: "
+        + quoted[skipped]
+        + "does not exist in "
+        + zone[skipped]
+        + " (the clocks go forward over it); give the time with its UTC offset",
+    )
+    twice = fault.eq("ambiguous").fillna(False).astype(bool)
+    reasons.flag(
+        twice,
+        f"ambiguous local {column}: "
+        + quoted[twice]
+        + "happens twice in "
+        + zone[twice]
+        + " (the clocks go back over it); give the time with its UTC offset",
+    )
 
 
 def number_values(

@@ -22,6 +22,7 @@ from aftercast.ingest.files import PRE_REJECTED, Chunk, TextBlock
 KEYS = {
     "forecasts": ["series_id", "model", "issued_at", "target_at"],
     "actuals": ["series_id", "observed_at"],
+    "series": ["series_id"],
 }
 _MIX = np.uint64(0x100000001B3)  # the 64-bit FNV prime, to fold one column's hash into the next
 REASON = "same key as another row with other values"  # the reason validation gives in a chunk

@@ -11,13 +11,15 @@ from __future__ import annotations
 
 import json
 
+import numpy as np
 import pandas as pd
 from sqlalchemy import Connection, text
 
 from aftercast.config import MAX_SEASON, SeriesDefaults
+from aftercast.errors import InputFileError
 from aftercast.ingest.cells import Reasons, flag_nul, flag_unreadable, key_values
 from aftercast.ingest.load import Written
-from aftercast.ingest.validate import Checked, _package
+from aftercast.ingest.validate import Checked, _conflicts, _package
 from aftercast.periods import check_frequency, check_timezone
 from aftercast.store import schema
 from aftercast.store.bulk import insert_new, read_frame
@@ -32,6 +34,44 @@ def _check_values(values: pd.Series, check: object, reasons: Reasons, column: st
             check(value)  # type: ignore[operator]
         except ValueError as exc:
             reasons.flag(values == value, f"bad {column}: {exc}")
+
+
+def check_label_columns(columns: pd.Index, source: str) -> None:
+    """Raise InputFileError for a `label_` column without a label name after the prefix."""
+    for column in columns:
+        name = str(column)
+        if name.startswith("label_") and not name.removeprefix("label_").strip():
+            raise InputFileError(
+                f"{source}: column {name!r} has no label name after 'label_' "
+                "(e.g. label_team, label_region)"
+            )
+
+
+def _season(frame: pd.DataFrame, reasons: Reasons) -> pd.Series:
+    """The `season` column as numbers; a cell that is not a whole number in range is flagged."""
+    raw = frame["season"].astype("string").str.strip().replace("", pd.NA)
+    season = pd.to_numeric(raw, errors="coerce")
+    whole = (season >= 1) & (season <= MAX_SEASON) & (season % 1 == 0)
+    bad = raw.notna() & ~whole.astype("boolean").fillna(False)
+    why = f"season is not a whole number from 1 to {MAX_SEASON}: '" + raw[bad] + "'"
+    reasons.flag(bad, why)
+    return season.where(~bad)
+
+
+def _labels(frame: pd.DataFrame) -> pd.Series | str:
+    """Each row's labels as JSON text (names sorted), from its non-empty `label_` cells."""
+    labels = [c for c in frame.columns if str(c).startswith("label_")]
+    if not labels:
+        return "{}"
+    label_frame = frame[labels].astype("string")
+    label_frame.columns = [str(c).removeprefix("label_") for c in labels]
+    return pd.Series(
+        [
+            json.dumps({k: v for k, v in row.items() if not pd.isna(v) and v != ""}, sort_keys=True)
+            for row in label_frame.to_dict("records")
+        ],
+        index=frame.index,
+    )
 
 
 def check(frame: pd.DataFrame, first_row: int) -> Checked:
@@ -49,27 +89,13 @@ def check(frame: pd.DataFrame, first_row: int) -> Checked:
     if "timezone" in good:
         _check_values(good["timezone"], check_timezone, reasons, "timezone")
     if "season" in frame.columns:
-        raw = frame["season"].astype("string").str.strip().replace("", pd.NA)
-        season = pd.to_numeric(raw, errors="coerce")
-        reasons.flag(
-            raw.notna() & ~((season >= 1) & (season <= MAX_SEASON) & (season % 1 == 0)),
-            f"season is not a whole number from 1 to {MAX_SEASON}",
-        )
-        good["season"] = season
-    labels = [c for c in frame.columns if str(c).startswith("label_")]
-    label_frame = frame[labels].astype("string") if labels else pd.DataFrame(index=frame.index)
-    label_frame.columns = [str(c).removeprefix("label_") for c in labels]
-    good["labels"] = (
-        [
-            json.dumps({k: v for k, v in row.items() if not pd.isna(v) and v != ""})
-            for row in label_frame.to_dict("records")
-        ]
-        if labels
-        else "{}"
-    )
-    dup = good["key"].duplicated(keep=False) & key.notna()
-    reasons.flag(dup, "series_id appears more than once in the file")
-    checked = _package(frame, reasons, first_row, good, 0)
+        good["season"] = _season(frame, reasons)
+    good["labels"] = _labels(frame)
+    # Rows of one series that disagree are all rejected, naming each other; exact repeats
+    # count once, as for forecasts and actuals.
+    values = [c for c in good.columns if c != "key"]
+    repeats = _conflicts(good, ["key"], values, reasons, first_row)
+    checked = _package(frame, reasons, first_row, good, repeats)
     checked.first_row = first_row
     return checked
 
@@ -94,7 +120,9 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
     merged = merged.drop(index=merged.index.intersection(checked.rejected_keys))
     new = merged.loc[merged.index.difference(stored.index)].reset_index(names="key")
     insert_new(connection, schema.series, new.assign(created_at=now, updated_at=now), "key")
-    changed = merged.loc[merged.index.intersection(stored.index)]
+    present = merged.loc[merged.index.intersection(stored.index)]
+    same = _as_stored(present, stored.loc[present.index])
+    changed = present.loc[~same]
     params = [
         {
             "k": key,
@@ -116,7 +144,21 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
             ),
             params,
         )
-    return Written(accepted=len(new), revised=len(changed))
+    unchanged = int(same.sum()) + checked.duplicates
+    return Written(accepted=len(new), revised=len(changed), unchanged=unchanged)
+
+
+def _as_stored(wanted: pd.DataFrame, stored: pd.DataFrame) -> np.ndarray:
+    """Which rows would store exactly what is stored already (re-ingesting changes nothing)."""
+    same = np.ones(len(wanted), dtype=bool)
+    for column in ("frequency", "timezone", "unit"):
+        new, old = (f[column].astype(object) for f in (wanted, stored))
+        same &= new.where(new.notna(), None).to_numpy() == old.where(old.notna(), None).to_numpy()
+    same &= wanted["season"].to_numpy("float64") == stored["season"].to_numpy("float64")
+    # Labels the config's entries wrote may list their names in another order.
+    for i in np.flatnonzero(same & (wanted["labels"].to_numpy() != stored["labels"].to_numpy())):
+        same[i] = json.loads(wanted["labels"].iloc[i]) == json.loads(stored["labels"].iloc[i])
+    return same
 
 
 def _refuse_period_changes(

@@ -45,13 +45,26 @@ class Checked:
     rejected_keys: list[str] = field(default_factory=list)  # refused when written (series only)
 
 
+FOUND_LISTED = 20  # columns a missing-column error lists; a wide file's others are counted
+
+
 def require_columns(frame: pd.DataFrame, required: list[str], source: str) -> None:
+    """Raise InputFileError naming the missing columns and the columns the file has.
+
+    The columns found show a misspelt or differently named header at once; a name with
+    spaces around it or none at all is quoted, since it would otherwise look right.
+    """
     missing = [c for c in required if c not in frame.columns]
-    if missing:
-        names = ", ".join(missing)
-        raise InputFileError(
-            f"{source}: missing required column{'s' if len(missing) > 1 else ''} {names}"
-        )
+    if not missing:
+        return
+    found = [str(c) for c in frame.columns if c != PRE_REJECTED]
+    shown = [c if c and c == c.strip() else repr(c) for c in found[:FOUND_LISTED]]
+    if len(found) > FOUND_LISTED:
+        shown.append(f"and {len(found) - FOUND_LISTED} more")
+    raise InputFileError(
+        f"{source}: missing required column{'s' if len(missing) > 1 else ''} "
+        f"{', '.join(missing)} (columns found: {', '.join(shown) or 'none'})"
+    )
 
 
 def extra_columns(frame: pd.DataFrame, known: list[str]) -> list[str]:

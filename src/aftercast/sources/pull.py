@@ -73,6 +73,9 @@ def _ingest_batch(
     try:
         report = ingest_chunks(engine, config, kind, label, batch.chunks, batch.digest)
     except InputFileError as exc:
+        log_event(
+            log, "batch not read", logging.WARNING, source=name, batch=batch.label, error=str(exc)
+        )
         result.batches_failed += 1
         if len(result.problems) < PROBLEMS_KEPT:
             result.problems.append(str(exc))
@@ -132,6 +135,7 @@ def pull_source(
                 "source pulled" if result.ok else "source failed",
                 level,
                 run_id=run_id,
+                source=settings.name,
                 **result.as_json(),
             )
     finally:

@@ -75,6 +75,7 @@ def iter_pair_export(connection: Connection, batch: int = EXPORT_BATCH) -> Itera
 
     Every batch has the columns of `PAIR_SELECT` then `export_columns`, whatever levels and
     quantiles its own pairs have; a measure a pair lacks is missing (NaN, or NA for `hit_`).
+    A store without pairs gives one empty batch, so that a CSV export still has its header.
     """
     columns = export_columns(connection)
     last = 0
@@ -85,6 +86,8 @@ def iter_pair_export(connection: Connection, batch: int = EXPORT_BATCH) -> Itera
             {"last": last, "n": batch},
         )
         if frame.empty:
+            if last == 0:
+                yield _widen(frame, pd.DataFrame(), pd.DataFrame(), columns)
             return
         last = int(frame["forecast_id"].iloc[-1])
         intervals = intervals_for(connection, frame["forecast_id"])

@@ -1,0 +1,120 @@
+"""`ingest series`: bad seasons and label columns, rows that disagree, and ingesting again.
+
+The rules are the CONTRACT's (design.md, input columns): a bad row is rejected with a reason and
+its row number while the good rows are kept; rows of one file that share a key but disagree
+are all rejected, naming each other, as forecasts and actuals are; re-ingesting the same rows
+changes nothing. Expected values are the input rows themselves, counted by hand. Both stores.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from sqlalchemy import Engine
+
+from aftercast.config import MAX_SEASON, Config
+from aftercast.errors import InputFileError
+from aftercast.ingest import ingest_path
+from aftercast.store.bulk import read_frame
+from tests.conftest import make_config, write_csv
+
+HEADER = "series_id,frequency,season,unit,label_team"
+
+
+def _quarantine(engine: Engine) -> list[tuple[int, str]]:
+    with engine.connect() as connection:
+        frame = read_frame(connection, "SELECT row_number, reason FROM quarantine")
+    return sorted(zip(frame["row_number"].astype(int), frame["reason"], strict=True))
+
+
+def _series(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(connection, "SELECT * FROM series ORDER BY key").set_index("key")
+
+
+def test_a_season_that_is_not_a_whole_number_in_range_is_rejected_naming_the_row(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    cells = ["abc", "2.5", "-1", "0", "0x10", str(MAX_SEASON + 1), "7.0", " 12 ", ""]
+    rows = [f"s{i},D,{cell},,x" for i, cell in enumerate(cells)]
+    report = ingest_path(engine, config, "series", write_csv(tmp_path / "s.csv", HEADER, *rows))
+    assert (report.accepted, report.rejected) == (3, 6)
+    reason = f"season is not a whole number from 1 to {MAX_SEASON}"
+    assert report.rejected_reasons == {reason: 6}
+    assert _quarantine(engine) == [(i + 1, f"{reason}: '{cells[i]}'") for i in range(6)]
+    stored = _series(engine)["season"]
+    assert stored.to_dict() == {"s6": 7, "s7": 12, "s8": config.series_defaults.season}
+
+
+def test_pushed_seasons_of_other_types_are_checked_alike(engine: Engine, config: Config) -> None:
+    from aftercast.ingest import ingest_records
+
+    pushed = [
+        {"series_id": "text", "season": "weekly"},
+        {"series_id": "true", "season": True},
+        {"series_id": "whole", "season": 7.0},
+    ]
+    report = ingest_records(engine, config, "series", pushed, "POST /v1/series")
+    assert (report.accepted, report.rejected) == (1, 2)
+    assert [line.split(": ", 2)[2] for line in report.examples] == ["'weekly'", "'True'"]
+
+
+@pytest.mark.parametrize("column", ["label_", "label_ "])
+def test_a_label_column_without_a_name_is_an_error_naming_it(
+    engine: Engine, config: Config, tmp_path: Path, column: str
+) -> None:
+    path = write_csv(tmp_path / "s.csv", f"series_id,label_team,{column}", "s,bakers,x")
+    with pytest.raises(InputFileError) as error:
+        ingest_path(engine, config, "series", path)
+    assert str(error.value).startswith(f"{path}: column {column!r} has no label name")
+    assert _series(engine).empty
+
+
+def test_rows_of_one_series_that_disagree_are_rejected_and_repeats_count_once(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    rows = [
+        "a,D,7,loaves,bakers",
+        "b,D,7,,ovens",
+        "a,D,7,loaves,counter",  # a's label disagrees with row 1
+        "b,D,7,,ovens",  # b repeated exactly: one series
+        "c,h,24,,night",
+        "a,D,7,loaves,bakers",  # row 1 again: still a's rows disagree
+    ]
+    report = ingest_path(engine, config, "series", write_csv(tmp_path / "s.csv", HEADER, *rows))
+    assert (report.accepted, report.rejected, report.unchanged) == (2, 3, 1)
+    same = "same key as another row with other values: row"
+    assert _quarantine(engine) == [(1, f"{same} 3, 6"), (3, f"{same} 1, 6"), (6, f"{same} 1, 3")]
+    assert _series(engine).index.tolist() == ["b", "c"]
+
+
+def test_rows_of_one_series_disagreeing_across_chunks_are_rejected(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    rows = [f"s{i},D,7,,team{i % 3}" for i in range(2_500)]
+    rows[1_700] = "s5,D,14,,team2"  # row 1701 disagrees with row 6 (s5), two chunks apart
+    rows[2_100] = rows[8]  # row 2101 repeats row 9 exactly
+    path = write_csv(tmp_path / "s.csv", HEADER, *rows)
+    chunked = make_config(str(config.store.url), ingest={"chunk_rows": 1_000})
+    report = ingest_path(engine, chunked, "series", path)
+    assert (report.rejected, report.unchanged) == (2, 1)
+    assert [number for number, _ in _quarantine(engine)] == [6, 1701]
+    assert len(_series(engine)) == 2_500 - 2 - 1
+
+
+def test_ingesting_a_series_file_again_changes_nothing(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    rows = ["a,D,7,loaves,bakers", "b,h,24,,", "c,,,,ovens"]
+    path = write_csv(tmp_path / "s.csv", HEADER + ",label_region", *(r + ",north" for r in rows))
+    first = ingest_path(engine, config, "series", path)
+    before = _series(engine)
+    again = ingest_path(engine, config, "series", path)
+    assert (first.accepted, first.revised, first.unchanged) == (3, 0, 0)
+    assert (again.accepted, again.revised, again.unchanged) == (0, 0, 3)
+    pd.testing.assert_frame_equal(_series(engine), before)  # updated_at included
+    edited = write_csv(tmp_path / "s2.csv", HEADER, "a,D,7,trays,bakers", *rows[1:])
+    third = ingest_path(engine, config, "series", edited)
+    assert (third.accepted, third.revised, third.unchanged) == (0, 3, 0)  # region dropped too
