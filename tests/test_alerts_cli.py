@@ -9,12 +9,16 @@ from __future__ import annotations
 
 import json
 import re
+import threading
+import time
 from pathlib import Path
 
+import pandas as pd
 import pytest
-from sqlalchemy import Engine
+from sqlalchemy import Engine, text
 
 from aftercast.alerts.stage import apply_findings
+from aftercast.alerts.store import ALERT_LOCK_KEY, set_attention
 from aftercast.cli import main
 from aftercast.config import Config
 from aftercast.store.db import make_engine, migrate
@@ -76,3 +80,47 @@ def test_alerts_findings_lists_what_detection_flagged(
     capsys.readouterr()
     assert main(["--config", str(path), "alerts", "findings"]) == 0
     assert capsys.readouterr().out.strip() == "no active findings"
+
+
+def test_ack_waits_for_a_running_alert_stage(pg_url: str, tmp_path: Path) -> None:
+    """An ack given while a cycle's alert stage holds its lock acts on what the stage leaves.
+
+    The stage is played by a transaction that takes the stage's advisory lock and clears the
+    alert; PostgreSQL reports the waiting ack in `pg_stat_activity` (wait_event_type 'Lock',
+    wait_event 'advisory'; PostgreSQL documentation, "The Cumulative Statistics System").
+    """
+    engine, _, _ = raised(pg_url, tmp_path)
+    alert_id = int(alerts(engine)["id"].iloc[0])
+    done: list[int] = []
+    with engine.connect() as stage:
+        transaction = stage.begin()
+        stage.execute(text("SELECT pg_advisory_xact_lock(:k)"), {"k": ALERT_LOCK_KEY})
+        stage.execute(text("UPDATE alerts SET state = 'cleared' WHERE id = :i"), {"i": alert_id})
+        ack = threading.Thread(
+            target=lambda: done.append(
+                set_attention(engine, [alert_id], "acknowledge", "ana", NOW + DAY)
+            )
+        )
+        ack.start()
+        try:
+            assert _waits_on_advisory_lock(engine), "the ack did not wait for the stage's lock"
+            assert done == []
+        finally:
+            transaction.commit()
+        ack.join(timeout=30)
+    assert done == [0]  # the alert had cleared by then: nothing to acknowledge
+    row = alerts(engine).set_index("id").loc[alert_id]
+    assert row["state"] == "cleared" and pd.isna(row["acknowledged_by"])
+
+
+def _waits_on_advisory_lock(engine: Engine) -> bool:
+    query = text(
+        "SELECT COUNT(*) FROM pg_stat_activity WHERE wait_event_type = 'Lock' "
+        "AND wait_event = 'advisory' AND datname = current_database()"
+    )
+    for _ in range(200):
+        with engine.connect() as connection:
+            if connection.execute(query).scalar_one():
+                return True
+        time.sleep(0.05)
+    return False
