@@ -150,6 +150,15 @@ def cmd_history(args: argparse.Namespace) -> int:
     return 0
 
 
+def _when(row: dict[str, Any]) -> str:
+    """The time that matters for a notification in its state; only a pending one has a next."""
+    if row["status"] == DELIVERED:
+        return f"delivered {row['delivered_at']}"
+    if row["status"] == DEAD:
+        return f"given up {row['last_attempt_at']}"
+    return f"next {row['due_at']}"
+
+
 def cmd_notifications(args: argparse.Namespace) -> int:
     engine = open_store(load_config(args.config))
     statuses = (PENDING, DEAD, DELIVERED) if args.delivered else (PENDING, DEAD)
@@ -165,7 +174,7 @@ def cmd_notifications(args: argparse.Namespace) -> int:
     for row in rows:
         print(
             f"{row['notification_id']} {row['status']:<9} {row['channel']} ({row['kind']}, "
-            f"{row['alert_count']} alerts) attempts {row['attempts']}, next {row['due_at']}: "
+            f"{row['alert_count']} alerts) attempts {row['attempts']}, {_when(row)}: "
             f"{row['detail'] or '-'}"
         )
     if not rows:

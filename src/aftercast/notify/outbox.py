@@ -199,12 +199,17 @@ def outbox_counts(connection: Connection) -> dict[str, int]:
 def notification_listing(
     connection: Connection, statuses: Sequence[str] = (PENDING, DEAD), limit: int = 50
 ) -> pd.DataFrame:
-    """Latest notifications in `statuses`: what waits, retries or was given up on, and why."""
+    """Latest notifications in `statuses`: what waits, retries or was given up on, and why.
+
+    `due_at` (the next attempt) is null once a notification is delivered or dead: neither is
+    ever tried again, whatever time the row kept from its last retry.
+    """
     marks = ", ".join(f":s{i}" for i in range(len(statuses)))
     return read_frame(
         connection,
         "SELECT id, notification_id, channel, route, kind, alert_count, status, attempts, "
-        f"created_at, due_at, last_attempt_at, delivered_at, detail FROM notification_outbox "
+        f"created_at, CASE WHEN status = '{PENDING}' THEN due_at END AS due_at, "
+        "last_attempt_at, delivered_at, detail FROM notification_outbox "
         f"WHERE status IN ({marks}) ORDER BY id DESC LIMIT :n",
         {**{f"s{i}": s for i, s in enumerate(statuses)}, "n": limit},
     )
