@@ -26,7 +26,18 @@ SUBJECT_MAX_CHARS = 160
 SEVERITY_RANK = {"critical": 0, "warning": 1, "info": 2}
 EVENT_TYPE_PREFIX = "org.aftercast.alert."
 # Shown first and in this order; anything else follows alphabetically.
-EVIDENCE_ORDER = ("statistic", "p_value", "n", "coverage", "level", "window_start", "window_end")
+EVIDENCE_ORDER = (
+    "statistic",
+    "p_adjusted",
+    "p_value",
+    "n",
+    "coverage",
+    "level",
+    "window_start",
+    "window_end",
+)
+# Evidence keys whose plain spelling would mislead: which p-value is the fleet-adjusted one.
+EVIDENCE_LABELS = {"p_adjusted": "adjusted p", "p_value": "raw p"}
 
 _env = Environment(
     loader=PackageLoader("aftercast.notify", "templates"),
@@ -64,10 +75,14 @@ def format_value(value: Any) -> str:
 
 
 def worst_alert(alerts: list[AlertLine]) -> AlertLine | None:
-    """The alert to name in a subject: highest severity, then the smallest p-value."""
+    """The alert to name in a subject: highest severity, then the smallest adjusted p-value.
+
+    The fleet-adjusted p-value is the one the alert was raised on; a raw p-value is only used
+    for evidence that has no adjusted one.
+    """
 
     def rank(alert: AlertLine) -> tuple[int, float]:
-        p_value = alert.evidence.get("p_value")
+        p_value = alert.evidence.get("p_adjusted", alert.evidence.get("p_value"))
         p = float(p_value) if isinstance(p_value, int | float) else 1.0
         return SEVERITY_RANK.get(alert.severity, len(SEVERITY_RANK)), p
 
@@ -135,9 +150,13 @@ def _alert_view(alert: AlertLine) -> dict[str, Any]:
         "rule": alert.rule.replace("_", " "),
         "opened": _display_time(alert.opened_at),
         "labels": ", ".join(f"{k}={v}" for k, v in sorted(alert.labels.items())),
-        "evidence": [(k.replace("_", " "), format_value(evidence[k])) for k in keys],
+        "evidence": [(_label(k), format_value(evidence[k])) for k in keys],
         "fix": None if fix is None else str(fix),
     }
+
+
+def _label(key: str) -> str:
+    return EVIDENCE_LABELS.get(key, key.replace("_", " "))
 
 
 def _display_time(text: str) -> str:
