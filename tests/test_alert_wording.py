@@ -13,7 +13,7 @@ from aftercast.alerts.listing import alert_rows
 from aftercast.alerts.stage import apply_findings
 from aftercast.config import Config
 from aftercast.notify.base import AlertLine, Notification
-from aftercast.notify.render import render_subject, render_text
+from aftercast.notify.render import render_html, render_subject, render_text
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
 from tests.test_alerts_support import DAY, START, findings, outbox, seed
@@ -34,7 +34,19 @@ def store(url: str, **rule: object) -> tuple[Engine, Config]:
     return engine, config
 
 
-def coverage_finding(engine: Engine, flagged: bool = True) -> object:
+# The `window` evidence as the detect stage writes it (detect.findings._window_evidence).
+WINDOW_28_DAYS = {
+    "name": "recent",
+    "start": "2024-04-25T00:00:00Z",
+    "end": "2024-05-23T00:00:00Z",
+    "targets": 28,
+}
+WINDOW_60_POINTS = {"name": "recent", "points": 60, "end": "2024-05-23T00:00:00Z", "targets": 60}
+
+
+def coverage_finding(
+    engine: Engine, flagged: bool = True, window: dict[str, object] | None = None
+) -> object:
     evidence = {
         "coverage": 0.55,
         "level": 80,
@@ -43,6 +55,7 @@ def coverage_finding(engine: Engine, flagged: bool = True) -> object:
         "p_value": RAW,
         "p_adjusted": ADJUSTED,
         "suggested_fix": "widen the 80% intervals' half-width by a factor of 1.9",
+        "window": window or WINDOW_28_DAYS,
     }
     # The findings frame's p_value is the adjusted one (alerts.findings.cycle_findings).
     row = {"series": "store-17", "p_value": ADJUSTED, "flagged": flagged, "evidence": evidence}
@@ -78,3 +91,18 @@ def test_subject_names_the_alert_with_the_smallest_adjusted_p() -> None:
     alerts = [line("small-raw", 1e-7, 0.04), line("small-adjusted", 1e-5, 0.002)]
     n = Notification("ntf", "digest", "r", "c", "2024-05-01T00:00:00Z", alerts)
     assert "small-adjusted/m" in render_subject(n) and "small-raw" not in render_subject(n)
+
+
+def test_the_evidence_window_reads_as_words(sqlite_url: str) -> None:
+    engine, config = store(sqlite_url)
+    apply_findings(engine, config, coverage_finding(engine), 1, NOW)
+    text = render_text(messages(engine)[0])
+    assert "Window: targets of the last 28 days (2024-04-25T00:00:00Z to 2024-05-23T00:00:00Z)" in (
+        text
+    )
+    assert "recent" not in text.replace("recent forecasts", "") and "'name'" not in text
+    engine, config = store(sqlite_url.replace(".db", "-points.db"))
+    apply_findings(engine, config, coverage_finding(engine, window=WINDOW_60_POINTS), 1, NOW)
+    message = messages(engine)[0]
+    assert "Window: the 60 latest targets (up to 2024-05-23T00:00:00Z)" in render_text(message)
+    assert "window: the 60 latest targets" in render_html(message)

@@ -89,6 +89,39 @@ def worst_alert(alerts: list[AlertLine]) -> AlertLine | None:
     return min(alerts, key=rank) if alerts else None
 
 
+def window_words(window: Any) -> str | None:
+    """The evidence window as a reader would say it, or None when it is not a window object.
+
+    A `days` window has a start, a `points` window its number of target periods (the detect
+    stage's `window` evidence).
+
+    >>> window_words({"name": "recent", "start": "2024-04-03T00:00:00Z",
+    ...               "end": "2024-05-01T00:00:00Z", "targets": 28})
+    'targets of the last 28 days (2024-04-03T00:00:00Z to 2024-05-01T00:00:00Z)'
+    >>> window_words({"name": "recent", "points": 60, "end": "2024-05-01T00:00:00Z"})
+    'the 60 latest targets (up to 2024-05-01T00:00:00Z)'
+    """
+    if not isinstance(window, dict) or not isinstance(window.get("end"), str):
+        return None
+    end = _display_time(window["end"])
+    points, start = window.get("points"), window.get("start")
+    if isinstance(points, int | float) and not isinstance(points, bool):
+        latest = "the latest target" if points == 1 else f"the {points:g} latest targets"
+        return f"{latest} (up to {end})"
+    if not isinstance(start, str):
+        return None
+    try:
+        days = (_instant(window["end"]) - _instant(start)).total_seconds() / 86_400
+    except ValueError:
+        return None
+    span = "day" if round(days, 2) == 1 else f"{round(days, 2):g} days"
+    return f"targets of the last {span} ({_display_time(start)} to {end})"
+
+
+def _instant(text: str) -> datetime:
+    return datetime.fromisoformat(utc_timestamp(text).replace("Z", "+00:00"))
+
+
 def where(alert: AlertLine) -> str:
     """ "series/model", plus the horizon when the alert is about some horizons only."""
     text = f"{alert.series_id}/{alert.model}"
@@ -140,6 +173,9 @@ def safe_token(text: str) -> str:
 def _alert_view(alert: AlertLine) -> dict[str, Any]:
     evidence = dict(alert.evidence)
     fix = evidence.pop("suggested_fix", None)
+    window = window_words(evidence.get("window"))
+    if window is not None:
+        del evidence["window"]  # said in words on its own line
     keys = [k for k in EVIDENCE_ORDER if k in evidence]
     keys += sorted(k for k in evidence if k not in EVIDENCE_ORDER)
     horizon = "all horizons" if alert.horizon == "all" else f"horizon {alert.horizon}"
@@ -152,6 +188,7 @@ def _alert_view(alert: AlertLine) -> dict[str, Any]:
         "labels": ", ".join(f"{k}={v}" for k, v in sorted(alert.labels.items())),
         "evidence": [(_label(k), format_value(evidence[k])) for k in keys],
         "fix": None if fix is None else str(fix),
+        "window": window,
     }
 
 
