@@ -14,6 +14,7 @@ from aftercast.alerts.stage import apply_findings
 from aftercast.config import Config
 from aftercast.notify.base import AlertLine, Notification
 from aftercast.notify.render import render_html, render_subject, render_text
+from aftercast.periods import to_iso
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
 from tests.test_alerts_support import DAY, START, findings, outbox, seed
@@ -106,3 +107,18 @@ def test_the_evidence_window_reads_as_words(sqlite_url: str) -> None:
     message = messages(engine)[0]
     assert "Window: the 60 latest targets (up to 2024-05-23T00:00:00Z)" in render_text(message)
     assert "window: the 60 latest targets" in render_html(message)
+
+
+def test_a_cleared_message_says_when_and_suggests_no_fix(sqlite_url: str) -> None:
+    engine, config = store(sqlite_url)
+    apply_findings(engine, config, coverage_finding(engine), 1, NOW)
+    apply_findings(engine, config, coverage_finding(engine, flagged=False), 2, NOW + DAY)
+    raised, cleared = messages(engine)
+    assert (raised.kind, cleared.kind) == ("digest", "cleared")
+    assert "Suggested fix: widen" in render_text(raised)  # the raise still carries it
+    text, html = render_text(cleared), render_html(cleared)
+    when = to_iso(NOW + DAY)  # the cycle that found it recovered
+    assert f"Cleared: {when} (open since {to_iso(NOW)})" in text
+    assert f"cleared {when}" in html
+    assert "Suggested fix" not in text and "Suggested fix" not in html and "widen" not in text
+    assert cleared.alerts[0].cleared_at == when and raised.alerts[0].cleared_at is None

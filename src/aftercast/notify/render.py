@@ -173,6 +173,7 @@ def safe_token(text: str) -> str:
 def _alert_view(alert: AlertLine) -> dict[str, Any]:
     evidence = dict(alert.evidence)
     fix = evidence.pop("suggested_fix", None)
+    cleared = alert.state == "cleared"
     window = window_words(evidence.get("window"))
     if window is not None:
         del evidence["window"]  # said in words on its own line
@@ -187,7 +188,9 @@ def _alert_view(alert: AlertLine) -> dict[str, Any]:
         "opened": _display_time(alert.opened_at),
         "labels": ", ".join(f"{k}={v}" for k, v in sorted(alert.labels.items())),
         "evidence": [(_label(k), format_value(evidence[k])) for k in keys],
-        "fix": None if fix is None else str(fix),
+        # A fix for a problem that has gone away would only be noise.
+        "fix": None if fix is None or cleared else str(fix),
+        "cleared": _display_time(alert.cleared_at) if cleared and alert.cleared_at else None,
         "window": window,
     }
 
