@@ -11,6 +11,7 @@ import json
 import re
 import threading
 import time
+from datetime import UTC, datetime
 from pathlib import Path
 
 import pandas as pd
@@ -124,3 +125,38 @@ def _waits_on_advisory_lock(engine: Engine) -> bool:
                 return True
         time.sleep(0.05)
     return False
+
+
+def test_snooze_until_a_time_or_for_a_duration(
+    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    engine, _, path = raised(sqlite_url, tmp_path)
+    first, second = (str(i) for i in alerts(engine)["id"].iloc[:2])
+    before = int(time.time())
+    target = (before // 3600 + 72) * 3600  # a whole hour three days ahead
+    stamp = datetime.fromtimestamp(target, UTC)  # written with the standard library's calendar
+    written = stamp.strftime("%Y-%m-%dT%H:%MZ")
+    assert main(["--config", str(path), "alerts", "snooze", first, "--until", written]) == 0
+    assert main(["--config", str(path), "alerts", "snooze", second, "--until", "90 minutes"]) == 0
+    after = int(time.time())
+    assert f"until {stamp.strftime('%Y-%m-%dT%H:%M:%SZ')}" in capsys.readouterr().out
+    until = alerts(engine).set_index("id")["snoozed_until"]
+    assert until[int(first)] == target
+    assert before + 5400 <= until[int(second)] <= after + 5400
+
+
+@pytest.mark.parametrize(
+    "value",
+    ["tomorrow", "now", "", "0m", "4 fortnights", "2020-01-01T00:00Z", "2026-13-01", "99999d"],
+)
+def test_a_bad_snooze_time_is_one_clear_line(
+    value: str, sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    engine, _, path = raised(sqlite_url, tmp_path)
+    alert_id = str(alerts(engine)["id"].iloc[0])
+    capsys.readouterr()
+    assert main(["--config", str(path), "alerts", "snooze", alert_id, "--until", value]) != 0
+    captured = capsys.readouterr()
+    lines = [line for line in (captured.out + captured.err).splitlines() if line.strip()]
+    assert len(lines) == 1 and f"--until {value!r}" in lines[0], lines
+    assert alerts(engine)["snoozed_until"].isna().all()  # nothing was snoozed

@@ -11,21 +11,18 @@ from __future__ import annotations
 
 import argparse
 import getpass
-import re
 import time
 from typing import Any
 
 from aftercast.alerts.routing import EVERY_ALERT, route_names
 from aftercast.alerts.rules import effective_rules, explain_rule, is_default
+from aftercast.alerts.snooze import snooze_end
 from aftercast.alerts.store import find_alert_ids, set_attention
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
 from aftercast.config import Config, load_config
 from aftercast.errors import AftercastError
-from aftercast.periods import parse_instant, to_iso
-
-_DURATION = re.compile(r"^(\d+(?:\.\d+)?)\s*([mhdw])$")
-_UNIT_SECONDS = {"m": 60, "h": 3600, "d": 86_400, "w": 604_800}
+from aftercast.periods import to_iso
 
 
 def register(commands: Any) -> None:
@@ -39,7 +36,9 @@ def register(commands: Any) -> None:
         action.add_argument("--note", default="", help="why, kept with the transition")
         if name == "snooze":
             action.add_argument(
-                "--until", required=True, help="ISO 8601 time, or a duration: 30m, 4h, 2d, 1w"
+                "--until",
+                required=True,
+                help="ISO 8601 time (UTC when it has no offset), or a duration: 30m, 4h, 2d, 1w",
             )
         action.set_defaults(handler=cmd_attention, verb=verb)
 
@@ -60,18 +59,10 @@ def _actions_of(parser: argparse.ArgumentParser) -> Any:
 
 def until_instant(text: str, now: int) -> int:
     """Epoch seconds of `--until`: an ISO 8601 time or a duration from now ("4h", "2d")."""
-    found = _DURATION.match(text.strip())
-    if found:
-        return now + int(float(found.group(1)) * _UNIT_SECONDS[found.group(2)])
     try:
-        moment = parse_instant(text)
-    except ValueError:
-        raise AftercastError(
-            f"--until {text!r} is neither an ISO 8601 time nor a duration like 4h or 2d"
-        ) from None
-    if moment <= now:
-        raise AftercastError(f"--until {text!r} is in the past")
-    return moment
+        return snooze_end(text, now)
+    except ValueError as exc:
+        raise AftercastError(f"--until {text!r} {exc}") from None
 
 
 def cmd_attention(args: argparse.Namespace) -> int:
