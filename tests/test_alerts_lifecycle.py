@@ -198,3 +198,20 @@ def test_rule_thresholds_narrow_what_detection_flags(store_url: str) -> None:
     raised = alerts(engine).query("state == 'raised'")
     assert raised["fingerprint"].str.split("|").str[0].tolist() == ["coverage_low"]
     assert raised["horizon"].tolist() == ["1"] and raised["p_value"].tolist() == [0.001]
+
+
+def test_a_reminder_due_within_a_minute_of_the_cycle_goes_now(
+    store_url: str, smtp: SmtpRecorder
+) -> None:
+    config = mail_config(store_url, smtp.port, remind_every_hours=1, raise_after=1)
+    engine = store(config)
+    hour = 3600
+    run(engine, config, [True], start=NOW)  # raised: first message
+    # The next cycle fires 30 s before the hour is up (scheduler jitter): the reminder goes now.
+    run(engine, config, [True], start=NOW + hour - 30)
+    # Two minutes short of the next hour is too early: that reminder waits for the next cycle.
+    run(engine, config, [True], start=NOW + 2 * hour - 30 - 120)
+    assert outbox(engine)["kind"].tolist() == ["digest", "reminder"]
+    run(engine, config, [True], start=NOW + 2 * hour - 30)
+    assert outbox(engine)["kind"].tolist() == ["digest", "reminder", "reminder"]
+    assert len(smtp.messages) == 3

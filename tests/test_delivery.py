@@ -31,6 +31,7 @@ from aftercast.cli import main
 from aftercast.config import Config, load_config
 from aftercast.logs import configure_logging
 from aftercast.notify.deliver import deliver_due
+from aftercast.periods import to_iso
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
 from tests.servers import LOOPBACK, HttpRecorder, SmtpRecorder, free_port
@@ -113,9 +114,12 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     assert main(["--config", str(path), "alerts", "notifications"]) == 0
     out = capsys.readouterr().out
     assert "dead" in out and "gave up after 3 attempts" in out and "1 dead" in out
+    # A dead message is never tried again: no "next" time, though the row keeps its last due_at.
+    assert row["due_at"] is not None and "next" not in out
+    assert f"given up {to_iso(int(row['last_attempt_at']))}" in out
     assert main(["--config", str(path), "alerts", "notifications", "--json"]) == 0
     listed = json.loads(capsys.readouterr().out)
-    assert [(n["status"], n["attempts"]) for n in listed] == [("dead", 3)]
+    assert [(n["status"], n["attempts"], n["due_at"]) for n in listed] == [("dead", 3, None)]
 
 
 def test_permanent_refusal_is_dead_at_once(store_url: str) -> None:

@@ -11,9 +11,11 @@ is one alert however many cycles see it. Its states:
 
 A cleared fingerprint that trips again starts a new episode on the same alert. Messages go out
 when an alert is raised (one), while it stays raised and unacknowledged (a reminder every
-`remind_every_hours`), and when it clears (one, and only if its raise was told to anyone). While
-snoozed an alert is tracked as usual but raises and reminders wait; when the snooze ends and the
-alert is still raised, the message that was held back goes out at the next cycle. Everything
+`remind_every_hours`, due up to `REMINDER_SLACK_SECONDS` early so that scheduler jitter does
+not push it a whole cycle late), and when it clears (one, and only if its raise was told to
+anyone). While snoozed an alert is tracked as usual but raises and reminders wait; when the
+snooze ends and the alert is still raised, the message that was held back goes out at the next
+cycle. Everything
 here is pure and vectorised over all alerts: frames in, frames out; the store module reads and
 writes them.
 """
@@ -27,6 +29,7 @@ import pandas as pd
 
 PENDING, RAISED, ACKNOWLEDGED, CLEARED = "pending", "raised", "acknowledged", "cleared"
 OPEN_STATES = (PENDING, RAISED, ACKNOWLEDGED)
+REMINDER_SLACK_SECONDS = 60  # a reminder due this close after the cycle's clock counts as due
 STATES = (PENDING, RAISED, ACKNOWLEDGED, CLEARED)
 
 ALERT_COLUMNS = [
@@ -176,8 +179,11 @@ def _notices(
     notified = frame["notified_at"].astype(float).to_numpy()
     told = ~np.isnan(notified)
     remind = settings["remind_seconds"].to_numpy()
+    # A scheduler fires a little early or late; a reminder due within the slack of this cycle's
+    # clock goes now rather than a whole cycle late (never sooner than half its interval).
+    slack = np.minimum(REMINDER_SLACK_SECONDS, remind / 2)
     with np.errstate(invalid="ignore"):
-        reminder_due = told & (remind > 0) & (now - notified >= remind)
+        reminder_due = told & (remind > 0) & (now - notified >= remind - slack)
     up = (state == RAISED) & ~snoozed
     kinds = np.full(len(frame), "", dtype=object)
     kinds[up & ~told] = "raised"  # just raised, or held back by a snooze that has ended

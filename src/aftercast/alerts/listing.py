@@ -49,8 +49,9 @@ def alert_rows(connection: Connection, include_cleared: bool = False) -> list[di
 
     Each row: id, series_id, model, horizon, rule, state, active (raised or acknowledged),
     severity, opened_at (start of the run of cycles that raised it), raised_at, cleared_at,
-    acknowledged_by/at, snoozed_until/by, statistic, p_value, summary, evidence and the latest
-    notification's status, attempts and detail.
+    acknowledged_by/at, snoozed_until/by, statistic, p_adjusted (the fleet-adjusted p-value the
+    rule read), summary, evidence (with the test's raw `p_value`) and the latest notification's
+    status, attempts and detail.
     """
     states = OPEN_STATES if not include_cleared else (*OPEN_STATES, "cleared")
     marks = ", ".join(f":s{i}" for i in range(len(states)))
@@ -71,6 +72,9 @@ def alert_rows(connection: Connection, include_cleared: bool = False) -> list[di
         row["opened_at"] = row.pop("since_at")
         row["active"] = row["state"] in (RAISED, ACKNOWLEDGED)
         row["evidence"] = json.loads(row["evidence"] or "{}")
+        # The alert's own p-value is the fleet-adjusted one; the test's raw p-value stays in the
+        # evidence (`evidence.p_value`, beside `evidence.p_adjusted`), so the names cannot mix.
+        row["p_adjusted"] = row.pop("p_value")
         rows.append(row)
     return rows
 

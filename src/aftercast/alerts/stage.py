@@ -138,6 +138,8 @@ def _lines(moved: Advance, ids: pd.Series, names: Names, rules: list[RuleConfig]
         series_labels, rule_labels, lines[["rule", "severity", "model"]]
     )
     lines["opened_at"] = lines["since_at"].map(lambda t: to_iso(t) or "")
+    cleared_at = lines["cleared_at"].where(lines["kind"] == "cleared")
+    lines["cleared_at"] = cleared_at.map(to_iso).astype(object)
     lines["state"] = np.where(lines["kind"] == "cleared", "cleared", lines["state"])
     return lines
 

@@ -40,6 +40,7 @@ class AlertLine:
     summary: str  # one human sentence: what, how bad
     evidence: dict[str, Any] = field(default_factory=dict)
     labels: dict[str, str] = field(default_factory=dict)
+    cleared_at: str | None = None  # ISO 8601 UTC, when a cleared alert cleared
 
 
 @dataclass(frozen=True)

@@ -4,12 +4,13 @@ The alert stage calls `enqueue` inside the same transaction that records the tra
 notification exists exactly when its state change does. A deliverer then `claim_due`s rows in a
 short transaction: on PostgreSQL with `SELECT ... FOR UPDATE SKIP LOCKED`, so replicas claiming at
 the same moment take different rows, and on both stores by writing a lease (`claimed_by`,
-`claimed_until`), so a row stays claimed after that transaction ends. The attempt is counted at
-claim time: a notification that crashes its sender is still given up after `max_attempts`. The
-send happens outside any transaction, and `finish` records the outcome only if the claim is
-still ours. A deliverer killed between send and `finish` leaves the row claimed until the lease
-lapses; another deliverer then sends it again with the same id, which receivers drop. So a crash
-can repeat a message, never lose one.
+`claimed_until`), so a row stays claimed after that transaction ends; each row's lease is
+renewed right before it is sent, so a long batch cannot outlive its claim. The attempt is
+counted at claim time: a notification that crashes its sender is still given up after
+`max_attempts`. The send happens outside any transaction, and `finish` records the outcome
+only if the claim is still ours. A deliverer killed between send and `finish` leaves the row
+claimed until the lease lapses; another deliverer then sends it again with the same id, which
+receivers drop. So a crash can repeat a message, never lose one.
 """
 
 from __future__ import annotations
@@ -116,6 +117,24 @@ def claim_due(
     return [Claim(int(r[0]), str(r[1]), str(r[2]), str(r[3]), int(r[4])) for r in rows]
 
 
+def renew(engine: Engine, claim: Claim, worker: str, now: int, lease_seconds: float) -> bool:
+    """Extend the lease of `claim` from `now`, just before sending it; False if it is not ours.
+
+    A batch is claimed at once but sent one by one, so the last of a slow batch could outlive
+    the lease it was claimed with, be claimed by another deliverer and go out twice. Renewed
+    right before its own send, each message is leased for the full `lease_seconds` of that
+    send; one that another deliverer took meanwhile is left to it.
+    """
+    t = notification_outbox
+    with write(engine) as connection:
+        done = connection.execute(
+            update(t)
+            .where(t.c.id == claim.id, t.c.claimed_by == worker, t.c.status == PENDING)
+            .values(claimed_until=now + math.ceil(lease_seconds))
+        )
+    return bool(done.rowcount)
+
+
 def retry_delay(
     attempt: int,
     delivery: DeliveryConfig,
@@ -199,12 +218,17 @@ def outbox_counts(connection: Connection) -> dict[str, int]:
 def notification_listing(
     connection: Connection, statuses: Sequence[str] = (PENDING, DEAD), limit: int = 50
 ) -> pd.DataFrame:
-    """Latest notifications in `statuses`: what waits, retries or was given up on, and why."""
+    """Latest notifications in `statuses`: what waits, retries or was given up on, and why.
+
+    `due_at` (the next attempt) is null once a notification is delivered or dead: neither is
+    ever tried again, whatever time the row kept from its last retry.
+    """
     marks = ", ".join(f":s{i}" for i in range(len(statuses)))
     return read_frame(
         connection,
         "SELECT id, notification_id, channel, route, kind, alert_count, status, attempts, "
-        f"created_at, due_at, last_attempt_at, delivered_at, detail FROM notification_outbox "
+        f"created_at, CASE WHEN status = '{PENDING}' THEN due_at END AS due_at, "
+        "last_attempt_at, delivered_at, detail FROM notification_outbox "
         f"WHERE status IN ({marks}) ORDER BY id DESC LIMIT :n",
         {**{f"s{i}": s for i, s in enumerate(statuses)}, "n": limit},
     )
