@@ -165,6 +165,37 @@ def test_failing_channel_holds_back_the_rest_of_its_batch(store_url: str) -> Non
     assert rows["claimed_by"].isna().all()
 
 
+@pytest.mark.filterwarnings("ignore:Requiring AUTH while not requiring TLS")
+def test_refused_smtp_login_holds_the_channel_back_and_says_why(
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    with SmtpRecorder(logins={"alerts": "the-right-one"}) as smtp:
+        wrong = mail_channel(smtp.port, username="alerts", password="not-the-right-one")
+        with HttpRecorder() as server:
+            config = make_config(
+                store_url,
+                channels=[wrong, hook(server.url())],
+                rules=[{"detection": "coverage_low", "raise_after": 1, "remind_every_hours": 0}],
+            )
+            engine = make_engine(config.store.url)
+            migrate(engine)
+            seed(engine, config, {"s1": {}, "s2": {}, "s3": {}}, days=3)
+            for step, key in enumerate(("s1", "s2", "s3")):  # three cycles: three per channel
+                apply_findings(engine, config, findings(engine, [{"series": key}]), step, NOW)
+            report = deliver_due(engine, config)
+            assert len(server.requests) == 3  # the other channel is untouched
+    assert smtp.messages == []
+    mail = outbox(engine).query("channel == 'oncall-mail'")
+    # One attempt told the reason; the other two wait unattempted, none is given up.
+    assert sorted(mail["attempts"]) == [0, 0, 1] and set(mail["status"]) == {"pending"}
+    assert (report.delivered, report.retrying, report.dead) == (3, 1, 0)
+    path = tmp_path / "c.yaml"
+    path.write_text(f"store:\n  url: {store_url}\n")
+    assert main(["--config", str(path), "alerts", "notifications"]) == 0
+    out = capsys.readouterr().out
+    assert "refused the login of 'alerts' (535" in out and "username and password" in out
+
+
 DELIVERER = """
 import sys
 from aftercast.config import load_config
@@ -262,7 +293,7 @@ def test_secrets_never_reach_logs_output_or_the_store(
         smtp.stop()
         logging.getLogger().removeHandler(handler)
     rows = outbox(engine)
-    assert set(rows["status"]) == {"dead", "delivered"}  # login refused (535), hook done
+    assert set(rows["status"]) == {"pending", "delivered"}  # login refused (535), hook done
     seen = capsys.readouterr()
     stored = rows.to_json()
     for secret in (PASSWORD, SECRET, SECRET.removeprefix("whsec_"), TOKEN):
