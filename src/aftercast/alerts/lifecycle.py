@@ -91,7 +91,11 @@ def empty_alerts() -> pd.DataFrame:
 
 
 def advance(
-    current: pd.DataFrame, evaluated: pd.DataFrame, parameters: pd.DataFrame, now: int
+    current: pd.DataFrame,
+    evaluated: pd.DataFrame,
+    parameters: pd.DataFrame,
+    now: int,
+    announce: bool = True,
 ) -> Advance:
     """Move every open alert, and every fingerprint whose rule is met, on by one cycle.
 
@@ -99,7 +103,9 @@ def advance(
     cycle's rule evaluation with `fingerprint`, `met`, `raise_after`, `clear_after`,
     `remind_seconds`, `summary` and the latest evidence; `parameters`: per-rule settings indexed
     by rule name, used for open alerts that were not evaluated this cycle (they count as not met;
-    those of a rule no longer in force clear after one cycle).
+    those of a rule no longer in force clear after one cycle). Without `announce` (no channel to
+    send to) no message is due and no alert counts as told, so a raise is announced at the first
+    cycle that has somewhere to send it.
     """
     cur = current.set_index("fingerprint")
     ev = evaluated.set_index("fingerprint")
@@ -144,6 +150,8 @@ def advance(
         frame[column] = frame[column].where(~(lapses | clears))
 
     kinds = _notices(frame, settings, raised_now, clears, now)
+    if not announce:
+        kinds[:] = ""
     frame["notified_at"] = frame["notified_at"].where(kinds == "", now)
     transitions = _transitions(frame, prev, lapses, clears, latest, settings)
     notices = pd.DataFrame({"fingerprint": keys[kinds != ""], "kind": kinds[kinds != ""]})
