@@ -122,6 +122,39 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     assert [(n["status"], n["attempts"], n["due_at"]) for n in listed] == [("dead", 3, None)]
 
 
+def test_a_dead_notification_retried_by_hand_goes_out_with_its_id(
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "c.yaml"
+    path.write_text(f"store:\n  url: {store_url}\n")
+    with HttpRecorder(default_status=404) as server:  # a wrong URL: dead at once
+        engine, config = queue_one(store_url, [hook(server.url())], max_attempts=3)
+        deliver_due(engine, config)
+        key = str(outbox(engine)["notification_id"].iloc[0])
+        assert outbox(engine)["status"].tolist() == ["dead"]
+        capsys.readouterr()
+        assert main(["--config", str(path), "alerts", "notifications"]) == 0
+        assert "outbox retry" in capsys.readouterr().out  # the listing says how
+        server.default_status = 200  # the cause is fixed
+        assert main(["--config", str(path), "outbox", "retry", key, "--by", "ana"]) == 0
+        assert f"re-queued 1 dead notification(s), due now: {key}" in capsys.readouterr().out
+        row = outbox(engine).iloc[0]
+        assert (row["status"], int(row["attempts"]), row["detail"]) == (
+            "pending",
+            0,
+            "re-queued by ana",
+        )
+        assert deliver_due(engine, config).delivered == 1
+        assert [r.headers["webhook-id"] for r in server.requests] == [key, key]
+    assert outbox(engine)["status"].tolist() == ["delivered"]
+    assert main(["--config", str(path), "outbox", "retry", "--all-dead"]) == 0
+    assert "no dead notifications" in capsys.readouterr().out
+    for wrong in (["ntf_nope"], [key], []):  # unknown, not dead, nothing named
+        assert main(["--config", str(path), "outbox", "retry", *wrong]) != 0
+        seen = capsys.readouterr()
+        assert len((seen.out + seen.err).strip().splitlines()) == 1
+
+
 def test_permanent_refusal_is_dead_at_once(store_url: str) -> None:
     # RFC 9110 15.5: a 4xx other than 408/429 says the request itself is wrong; retrying won't help.
     with HttpRecorder(default_status=404) as server:

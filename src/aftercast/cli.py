@@ -34,6 +34,7 @@ COMMAND_MODULES = (
     "aftercast.commands.replay",
     "aftercast.commands.alerts",  # before alert_actions, whose ack/snooze attach to `alerts`
     "aftercast.commands.alert_actions",
+    "aftercast.commands.outbox",
 )
 
 

@@ -179,5 +179,6 @@ def cmd_notifications(args: argparse.Namespace) -> int:
         )
     if not rows:
         print("no notifications waiting or dead")
-    print(_counts_line(counts))
+    hint = "; `aftercast outbox retry ID` or `--all-dead` sends dead ones again"
+    print(_counts_line(counts) + (hint if counts[DEAD] else ""))
     return 0
