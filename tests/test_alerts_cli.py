@@ -18,6 +18,7 @@ import pandas as pd
 import pytest
 from sqlalchemy import Engine, text
 
+from aftercast.alerts.listing import alert_rows
 from aftercast.alerts.stage import apply_findings
 from aftercast.alerts.store import ALERT_LOCK_KEY, set_attention
 from aftercast.cli import main
@@ -143,6 +144,14 @@ def test_snooze_until_a_time_or_for_a_duration(
     until = alerts(engine).set_index("id")["snoozed_until"]
     assert until[int(first)] == target
     assert before + 5400 <= until[int(second)] <= after + 5400
+    assert main(["--config", str(path), "alerts", "--json"]) == 0
+    rows = {str(row["id"]): row for row in json.loads(capsys.readouterr().out)}
+    assert rows[first]["snoozed"] and rows[second]["snoozed"]
+    with engine.connect() as connection:  # two hours on, the 90-minute snooze has run out
+        later = {str(r["id"]): r for r in alert_rows(connection, now=after + 7200)}
+    assert later[first]["snoozed"] and not later[second]["snoozed"]
+    assert main(["--config", str(path), "alerts"]) == 0
+    assert capsys.readouterr().out.count("[snoozed until ") == 2
 
 
 @pytest.mark.parametrize(

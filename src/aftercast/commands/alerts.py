@@ -68,7 +68,7 @@ def _flags(row: dict[str, Any]) -> list[str]:
     flags = []
     if row["acknowledged_by"]:
         flags.append(f"ack by {row['acknowledged_by']}")
-    if row["snoozed_until"]:
+    if row["snoozed"]:
         flags.append(f"snoozed until {row['snoozed_until']}")
     if row["notification_status"] in (PENDING, DEAD) and row["notification_attempts"]:
         flags.append(
