@@ -169,3 +169,19 @@ def test_a_bad_snooze_time_is_one_clear_line(
     lines = [line for line in (captured.out + captured.err).splitlines() if line.strip()]
     assert len(lines) == 1 and f"--until {value!r}" in lines[0], lines
     assert alerts(engine)["snoozed_until"].isna().all()  # nothing was snoozed
+
+
+def test_a_cleared_alert_is_not_snoozed(
+    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    engine, config, path = raised(sqlite_url, tmp_path)
+    quiet = findings(engine, [{"series": s} for s in SERIES[1:]])  # shop-00 recovered
+    for day in (1, 2, 3):  # coverage_low keeps its default clear_after of 3 (DEFAULT_RULES)
+        apply_findings(engine, config, quiet, 1 + day, NOW + day * DAY)
+    rows = alerts(engine)
+    cleared = str(int(rows.loc[rows["state"] == "cleared", "id"].iloc[0]))
+    capsys.readouterr()
+    assert main(["--config", str(path), "alerts", "snooze", cleared, "--until", "4h"]) == 0
+    out = capsys.readouterr().out
+    assert "snoozed 0 of 1" in out and "only open (not cleared) alerts can be snoozed" in out
+    assert alerts(engine)["snoozed_until"].isna().all()
