@@ -13,6 +13,8 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from aftercast.alerts.listing import alert_rows, transitions_of
+from aftercast.alerts.store import find_alert_ids
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
 from aftercast.config import load_config
@@ -79,8 +81,6 @@ def _flags(row: dict[str, Any]) -> list[str]:
 
 
 def cmd_alerts(args: argparse.Namespace) -> int:
-    from aftercast.alerts.listing import alert_rows
-
     engine = open_store(load_config(args.config))
     with engine.connect() as connection:
         rows = alert_rows(connection, include_cleared=args.all)
@@ -131,9 +131,6 @@ def _counts_line(counts: dict[str, int]) -> str:
 
 
 def cmd_history(args: argparse.Namespace) -> int:
-    from aftercast.alerts.listing import transitions_of
-    from aftercast.alerts.store import find_alert_ids
-
     engine = open_store(load_config(args.config))
     with engine.connect() as connection:
         find_alert_ids(connection, [args.alert_id])
