@@ -15,9 +15,8 @@ when an alert is raised (one), while it stays raised and unacknowledged (a remin
 not push it a whole cycle late), and when it clears (one, and only if its raise was told to
 anyone). While snoozed an alert is tracked as usual but raises and reminders wait; when the
 snooze ends and the alert is still raised, the message that was held back goes out at the next
-cycle. Everything
-here is pure and vectorised over all alerts: frames in, frames out; the store module reads and
-writes them.
+cycle. Everything here is pure and vectorised over all alerts: frames in, frames out; the store
+module reads and writes them.
 """
 
 from __future__ import annotations
