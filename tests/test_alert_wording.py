@@ -17,7 +17,8 @@ from aftercast.notify.render import render_html, render_subject, render_text
 from aftercast.periods import to_iso
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
-from tests.test_alerts_support import DAY, START, findings, outbox, seed
+from tests.servers import free_port
+from tests.test_alerts_support import DAY, START, findings, mail_channel, outbox, seed
 
 NOW = START + 22 * DAY
 RAW, ADJUSTED = 2.5e-5, 3.1e-3  # one coverage test's p-value and its fleet-adjusted value
@@ -122,3 +123,21 @@ def test_a_cleared_message_says_when_and_suggests_no_fix(sqlite_url: str) -> Non
     assert f"cleared {when}" in html
     assert "Suggested fix" not in text and "Suggested fix" not in html and "widen" not in text
     assert cleared.alerts[0].cleared_at == when and raised.alerts[0].cleared_at is None
+
+
+def test_the_digest_chart_caption_names_the_horizon_it_shows(sqlite_url: str) -> None:
+    config = make_config(
+        sqlite_url,
+        channels=[mail_channel(free_port())],  # only email draws charts; nothing is sent here
+        rules=[{"detection": "coverage_low", "raise_after": 1}],
+    )
+    engine = make_engine(config.store.url)
+    migrate(engine)
+    seed(engine, config, {"store-17": {}}, days=21)  # forecasts one day ahead: horizon 1
+    rows = [{"series": "store-17", "horizon": "1"}, {"series": "store-17", "horizon": "all"}]
+    apply_findings(engine, config, findings(engine, rows), 1, NOW)
+    (message,) = messages(engine)
+    assert sorted((c.bucket, c.horizon) for c in message.charts) == [("1", 1), ("all", 1)]
+    html = render_html(message, inline_charts=True)
+    assert "store-17 / shop-planner, horizon 1: actuals against the 80% band" in html
+    assert "store-17 / shop-planner, all horizons (drawn: horizon 1): actuals" in html

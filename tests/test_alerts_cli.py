@@ -18,6 +18,7 @@ import pandas as pd
 import pytest
 from sqlalchemy import Engine, text
 
+from aftercast.alerts.listing import alert_rows
 from aftercast.alerts.stage import apply_findings
 from aftercast.alerts.store import ALERT_LOCK_KEY, set_attention
 from aftercast.cli import main
@@ -143,6 +144,14 @@ def test_snooze_until_a_time_or_for_a_duration(
     until = alerts(engine).set_index("id")["snoozed_until"]
     assert until[int(first)] == target
     assert before + 5400 <= until[int(second)] <= after + 5400
+    assert main(["--config", str(path), "alerts", "--json"]) == 0
+    rows = {str(row["id"]): row for row in json.loads(capsys.readouterr().out)}
+    assert rows[first]["snoozed"] and rows[second]["snoozed"]
+    with engine.connect() as connection:  # two hours on, the 90-minute snooze has run out
+        later = {str(r["id"]): r for r in alert_rows(connection, now=after + 7200)}
+    assert later[first]["snoozed"] and not later[second]["snoozed"]
+    assert main(["--config", str(path), "alerts"]) == 0
+    assert capsys.readouterr().out.count("[snoozed until ") == 2
 
 
 @pytest.mark.parametrize(
@@ -160,3 +169,19 @@ def test_a_bad_snooze_time_is_one_clear_line(
     lines = [line for line in (captured.out + captured.err).splitlines() if line.strip()]
     assert len(lines) == 1 and f"--until {value!r}" in lines[0], lines
     assert alerts(engine)["snoozed_until"].isna().all()  # nothing was snoozed
+
+
+def test_a_cleared_alert_is_not_snoozed(
+    sqlite_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    engine, config, path = raised(sqlite_url, tmp_path)
+    quiet = findings(engine, [{"series": s} for s in SERIES[1:]])  # shop-00 recovered
+    for day in (1, 2, 3):  # coverage_low keeps its default clear_after of 3 (DEFAULT_RULES)
+        apply_findings(engine, config, quiet, 1 + day, NOW + day * DAY)
+    rows = alerts(engine)
+    cleared = str(int(rows.loc[rows["state"] == "cleared", "id"].iloc[0]))
+    capsys.readouterr()
+    assert main(["--config", str(path), "alerts", "snooze", cleared, "--until", "4h"]) == 0
+    out = capsys.readouterr().out
+    assert "snoozed 0 of 1" in out and "only open (not cleared) alerts can be snoozed" in out
+    assert alerts(engine)["snoozed_until"].isna().all()

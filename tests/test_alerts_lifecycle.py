@@ -37,6 +37,7 @@ from tests.test_alerts_support import (
 )
 
 NOW = START + 22 * DAY
+FILE_CHANNEL = {"name": "local", "type": "file", "path": "unused.jsonl"}
 
 
 @pytest.fixture
@@ -176,6 +177,23 @@ def test_without_channels_alerts_are_tracked_and_nothing_is_queued(store_url: st
     apply_findings(engine, config, findings(engine, [{"series": "store-17"}]), 2, NOW + DAY)
     assert alerts(engine)["state"].tolist() == ["raised"]
     assert outbox(engine).empty
+
+
+def test_a_raise_without_channels_is_announced_once_a_channel_exists(store_url: str) -> None:
+    rule = {"detection": "coverage_low", "raise_after": 1, "remind_every_hours": 0}
+    quiet = make_config(store_url, rules=[rule])
+    engine = store(quiet)
+    flagged = findings(engine, [{"series": "store-17"}])
+    apply_findings(engine, quiet, flagged, 1, NOW)
+    assert alerts(engine)["state"].tolist() == ["raised"] and outbox(engine).empty
+    told = quiet.model_copy(
+        update={"channels": make_config(store_url, channels=[FILE_CHANNEL]).channels}
+    )
+    apply_findings(engine, told, flagged, 2, NOW + DAY)  # still raised; now there is a channel
+    apply_findings(engine, told, flagged, 3, NOW + 2 * DAY)  # told already: quiet
+    sent = outbox(engine)
+    assert sent["kind"].tolist() == ["digest"] and sent["channel"].tolist() == ["local"]
+    assert "store-17" in sent["payload"].iloc[0]
 
 
 def test_rule_thresholds_narrow_what_detection_flags(store_url: str) -> None:

@@ -35,6 +35,7 @@ COMMAND_MODULES = (
     "aftercast.commands.quarantine",
     "aftercast.commands.alerts",  # before alert_actions, whose ack/snooze attach to `alerts`
     "aftercast.commands.alert_actions",
+    "aftercast.commands.outbox",
 )
 
 

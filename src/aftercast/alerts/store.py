@@ -163,8 +163,8 @@ def set_attention(
 ) -> int:
     """Acknowledge, snooze or unsnooze alerts, each recorded as a transition; returns the count.
 
-    Only raised alerts can be acknowledged (the others are left alone and not counted); any
-    open alert can be snoozed until a time, or unsnoozed. On PostgreSQL it waits for the alert
+    Only raised alerts can be acknowledged and only open ones snoozed or unsnoozed (the others
+    are left alone and not counted). On PostgreSQL it waits for the alert
     stage's lock first, so it reads the state a running cycle leaves, never one it is replacing.
     """
     with write(engine) as connection:
@@ -181,8 +181,10 @@ def set_attention(
                 "state": ACKNOWLEDGED,
             }
         elif action == "snooze":
+            rows = rows.loc[rows["state"].isin(OPEN_STATES)]  # a cleared alert has nothing to hold
             changes = {"snoozed_until": until, "snoozed_by": actor}
         else:
+            rows = rows.loc[rows["state"].isin(OPEN_STATES)]
             changes = {"snoozed_until": None, "snoozed_by": None}
         if rows.empty:
             return 0

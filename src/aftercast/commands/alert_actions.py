@@ -81,8 +81,9 @@ def cmd_attention(args: argparse.Namespace) -> int:
     suffix = f" until {to_iso(until)}" if until is not None else ""
     past = {"acknowledge": "acknowledged", "snooze": "snoozed", "unsnooze": "unsnoozed"}
     print(f"{past[args.verb]} {done} of {len(ids)} alert(s){suffix} as {actor}")
-    if args.verb == "acknowledge" and done < len(ids):
-        print("only raised alerts can be acknowledged; the others were left as they are")
+    if done < len(ids):
+        which = "raised" if args.verb == "acknowledge" else "open (not cleared)"
+        print(f"only {which} alerts can be {past[args.verb]}; the others were left as they are")
     return 0
 
 

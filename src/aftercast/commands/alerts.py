@@ -13,6 +13,8 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
+from aftercast.alerts.listing import alert_rows, transitions_of
+from aftercast.alerts.store import find_alert_ids
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
 from aftercast.config import load_config
@@ -68,7 +70,7 @@ def _flags(row: dict[str, Any]) -> list[str]:
     flags = []
     if row["acknowledged_by"]:
         flags.append(f"ack by {row['acknowledged_by']}")
-    if row["snoozed_until"]:
+    if row["snoozed"]:
         flags.append(f"snoozed until {row['snoozed_until']}")
     if row["notification_status"] in (PENDING, DEAD) and row["notification_attempts"]:
         flags.append(
@@ -79,8 +81,6 @@ def _flags(row: dict[str, Any]) -> list[str]:
 
 
 def cmd_alerts(args: argparse.Namespace) -> int:
-    from aftercast.alerts.listing import alert_rows
-
     engine = open_store(load_config(args.config))
     with engine.connect() as connection:
         rows = alert_rows(connection, include_cleared=args.all)
@@ -131,9 +131,6 @@ def _counts_line(counts: dict[str, int]) -> str:
 
 
 def cmd_history(args: argparse.Namespace) -> int:
-    from aftercast.alerts.listing import transitions_of
-    from aftercast.alerts.store import find_alert_ids
-
     engine = open_store(load_config(args.config))
     with engine.connect() as connection:
         find_alert_ids(connection, [args.alert_id])
@@ -179,5 +176,6 @@ def cmd_notifications(args: argparse.Namespace) -> int:
         )
     if not rows:
         print("no notifications waiting or dead")
-    print(_counts_line(counts))
+    hint = "; `aftercast outbox retry ID` or `--all-dead` sends dead ones again"
+    print(_counts_line(counts) + (hint if counts[DEAD] else ""))
     return 0

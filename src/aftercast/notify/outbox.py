@@ -24,6 +24,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Connection, Engine, case, func, select, update
 
+from aftercast.errors import AftercastError
 from aftercast.notify.base import DeliveryOutcome, Digest
 from aftercast.settings.alerts import DeliveryConfig
 from aftercast.store.bulk import allocate_ids, insert_frame, read_frame
@@ -200,6 +201,47 @@ def release(engine: Engine, claims: Sequence[Claim], worker: str) -> None:
             .where(t.c.id.in_([c.id for c in claims]), t.c.claimed_by == worker)
             .values(claimed_by=None, claimed_until=None, attempts=t.c.attempts - 1)
         )
+
+
+def requeue_dead(
+    engine: Engine, notification_ids: Sequence[str] | None, actor: str, now: int
+) -> list[str]:
+    """Put dead notifications back in the queue, due at `now` with a fresh count of attempts.
+
+    `notification_ids` names them (their idempotency keys, as `alerts notifications` lists
+    them); None takes every dead one. Naming one that is not dead is a user error. Returns the
+    keys re-queued. A re-sent message keeps its key, so a receiver that got it after all drops it.
+    """
+    t = notification_outbox
+    with write(engine) as connection:
+        query = select(t.c.notification_id, t.c.status)
+        if notification_ids is None:
+            query = query.where(t.c.status == DEAD)
+        else:
+            query = query.where(t.c.notification_id.in_(list(notification_ids)))
+        found = dict(connection.execute(query).tuples().all())
+        for key in notification_ids or ():
+            if key not in found:
+                raise AftercastError(
+                    f"no notification {key!r}; `aftercast alerts notifications` lists them"
+                )
+            if found[key] != DEAD:
+                raise AftercastError(f"notification {key!r} is {found[key]}, not dead")
+        chosen = sorted(found)
+        if chosen:
+            connection.execute(
+                update(t)
+                .where(t.c.notification_id.in_(chosen), t.c.status == DEAD)
+                .values(
+                    status=PENDING,
+                    attempts=0,
+                    due_at=now,
+                    claimed_by=None,
+                    claimed_until=None,
+                    detail=f"re-queued by {actor}",
+                )
+            )
+    return chosen
 
 
 def outbox_counts(connection: Connection) -> dict[str, int]:

@@ -19,7 +19,7 @@ from urllib.parse import quote, urlsplit
 
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
-from aftercast.notify.base import AlertLine, Notification, jsonable
+from aftercast.notify.base import AlertLine, ChartData, Notification, jsonable
 from aftercast.settings.channels import SUBJECT_PREFIX
 
 SUBJECT_MAX_CHARS = 160
@@ -211,8 +211,7 @@ def _context(n: Notification, inline_charts: bool) -> dict[str, Any]:
     charts = [
         {
             "cid": chart_content_id(n, i),
-            "caption": f"{c.series_id} / {c.model}: actuals against the {format_value(c.level)}%"
-            " band, and its rolling coverage",
+            "caption": _caption(c),
         }
         for i, c in enumerate(n.charts)
     ]
@@ -225,6 +224,14 @@ def _context(n: Notification, inline_charts: bool) -> dict[str, Any]:
         "dashboard_url": url,
         "charts": charts if inline_charts else [],
     }
+
+
+def _caption(chart: ChartData) -> str:
+    where = f"{chart.series_id} / {chart.model}"
+    horizon = chart.horizon_words()
+    where = f"{where}, {horizon}" if horizon else where
+    band = f"{format_value(chart.level)}% band"
+    return f"{where}: actuals against the {band}, and its rolling coverage"
 
 
 def _is_web_url(url: str) -> bool:
