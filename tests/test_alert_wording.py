@@ -11,6 +11,7 @@ from sqlalchemy import Engine
 
 from aftercast.alerts.listing import alert_rows
 from aftercast.alerts.stage import apply_findings
+from aftercast.alerts.wording import summary_line
 from aftercast.config import Config
 from aftercast.notify.base import AlertLine, Notification
 from aftercast.notify.render import render_html, render_subject, render_text
@@ -141,3 +142,19 @@ def test_the_digest_chart_caption_names_the_horizon_it_shows(sqlite_url: str) ->
     html = render_html(message, inline_charts=True)
     assert "store-17 / shop-planner, horizon 1: actuals against the 80% band" in html
     assert "store-17 / shop-planner, all horizons (drawn: horizon 1): actuals" in html
+
+
+def test_a_p_value_that_underflowed_is_not_printed_as_zero() -> None:
+    """scipy's exact binomial tail underflows to 0.0 for extreme counts (here 0 hits of 2,000 at
+    95%: 0.05**2000 is far below the smallest double); the message must not claim p = 0."""
+    from scipy.stats import binomtest
+
+    p = binomtest(0, 2000, 0.95).pvalue
+    assert p == 0.0  # scipy.stats.binomtest, the test aftercast's coverage check uses
+    sentence = summary_line("coverage_low", {"coverage": 0.0, "level": 95}, None, p, 2000)
+    assert sentence.endswith("(adjusted p < 1e-300).") and "p = 0" not in sentence
+    evidence = {"p_value": p, "p_adjusted": p}
+    alert = AlertLine("s", "m", "1", "coverage_low", "raised", "critical",
+                      "2024-05-01T00:00:00Z", sentence, evidence)  # fmt: skip
+    text = render_text(Notification("ntf", "digest", "r", "c", "2024-05-01T00:00:00Z", [alert]))
+    assert "adjusted p < 1e-300" in text and "raw p < 1e-300" in text

@@ -15,6 +15,7 @@ from collections.abc import Callable, Mapping
 from typing import Any
 
 from aftercast.alerts.rules import DETECTIONS
+from aftercast.notify.render import P_UNDERFLOW
 
 Evidence = Mapping[str, Any]
 
@@ -90,7 +91,7 @@ _SENTENCES: dict[str, Callable[[Evidence, float | None], str | None]] = {
 def _sureness(statistic: Any, p_value: Any) -> str:
     # The findings an alert reads carry the fleet-adjusted p-value (Benjamini-Hochberg).
     if (p := _number(p_value)) is not None:
-        return f" (adjusted p = {p:.2g})"
+        return f" (adjusted p = {p:.2g})" if p > 0 else f" (adjusted p {P_UNDERFLOW})"
     if (s := _number(statistic)) is not None:
         return f" (statistic {s:.3g})"
     return ""

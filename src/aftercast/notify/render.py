@@ -38,6 +38,8 @@ EVIDENCE_ORDER = (
 )
 # Evidence keys whose plain spelling would mislead: which p-value is the fleet-adjusted one.
 EVIDENCE_LABELS = {"p_adjusted": "adjusted p", "p_value": "raw p"}
+# A p-value computed as 0.0 (the tail probability underflowed): true p is only known to be tiny.
+P_UNDERFLOW = "< 1e-300"
 
 _env = Environment(
     loader=PackageLoader("aftercast.notify", "templates"),
@@ -61,12 +63,17 @@ def utc_timestamp(text: str) -> str:
     return moment.astimezone(UTC).isoformat().replace("+00:00", "Z")
 
 
-def format_value(value: Any) -> str:
-    """A number short enough for a phone screen; tiny p-values keep their exponent.
+def format_value(value: Any, p_value: bool = False) -> str:
+    """A number short enough for a phone screen; tiny p-values keep their exponent, and one
+    that underflowed to 0 says it is below what a double holds rather than "0".
 
     >>> format_value(0.000012), format_value(1.23456), format_value(40)
     ('1.20e-05', '1.235', '40')
+    >>> format_value(0.0, p_value=True)
+    '< 1e-300'
     """
+    if p_value and value == 0:
+        return P_UNDERFLOW
     if isinstance(value, float):
         if value != 0 and abs(value) < 1e-3:
             return f"{value:.2e}"
@@ -187,7 +194,9 @@ def _alert_view(alert: AlertLine) -> dict[str, Any]:
         "rule": alert.rule.replace("_", " "),
         "opened": _display_time(alert.opened_at),
         "labels": ", ".join(f"{k}={v}" for k, v in sorted(alert.labels.items())),
-        "evidence": [(_label(k), format_value(evidence[k])) for k in keys],
+        "evidence": [
+            (_label(k), format_value(evidence[k], k in EVIDENCE_LABELS)) for k in keys
+        ],
         # A fix for a problem that has gone away would only be noise.
         "fix": None if fix is None or cleared else str(fix),
         "cleared": _display_time(alert.cleared_at) if cleared and alert.cleared_at else None,
