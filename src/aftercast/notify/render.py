@@ -194,9 +194,7 @@ def _alert_view(alert: AlertLine) -> dict[str, Any]:
         "rule": alert.rule.replace("_", " "),
         "opened": _display_time(alert.opened_at),
         "labels": ", ".join(f"{k}={v}" for k, v in sorted(alert.labels.items())),
-        "evidence": [
-            (_label(k), format_value(evidence[k], k in EVIDENCE_LABELS)) for k in keys
-        ],
+        "evidence": [(_label(k), format_value(evidence[k], k in EVIDENCE_LABELS)) for k in keys],
         # A fix for a problem that has gone away would only be noise.
         "fix": None if fix is None or cleared else str(fix),
         "cleared": _display_time(alert.cleared_at) if cleared and alert.cleared_at else None,
