@@ -16,6 +16,7 @@ import pytest
 from sqlalchemy import Engine, text
 
 from aftercast.config import Config
+from aftercast.errors import InputFileError
 from aftercast.ingest import ingest_path
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
@@ -248,3 +249,33 @@ def test_a_nul_character_is_rejected_where_postgresql_could_not_store_it(
     alone = tmp_path / "alone.csv"  # its only key holds a NUL: never even looked up
     alone.write_bytes(b"series_id,observed_at,value\ns\x00,2026-01-01T00:00:00Z,1\n")
     assert ingest_path(engine, config, "actuals", alone).rejected == 1
+
+
+@pytest.mark.parametrize("chunk_rows", [1_000, 200_000])
+def test_blank_json_lines_are_skipped_and_rows_keep_their_line_numbers(
+    engine: Engine, config: Config, tmp_path: Path, chunk_rows: int
+) -> None:
+    good = '{"series_id": "s", "observed_at": "2026-01-%02d", "value": %d}'
+    bad = ['{"series_id": "s", "value": 3}', '{"series_id": "s", "observed_at": "2026-01-04"}']
+    lines = [good % (1, 1), "", "   \t", good % (2, 2), bad[0]]
+    lines += [""] * 1_200  # with 1,000-row chunks, one chunk of blank lines alone
+    lines += [good % (3, 3), bad[1], ""]
+    path = tmp_path / "actuals.jsonl"
+    path.write_text("\r\n".join(lines) + "\n", encoding="utf-8")
+    chunked = make_config(str(config.store.url), ingest={"chunk_rows": chunk_rows})
+    report = ingest_path(engine, chunked, "actuals", path)
+    assert (report.accepted, report.rejected) == (3, 2)
+    # The file's own line numbers of the two bad lines, counted by the standard library.
+    text = path.read_text(encoding="utf-8").splitlines()
+    numbers = [n for n, line in enumerate(text, start=1) if line in bad]
+    assert _quarantine(engine)["row_number"].tolist() == numbers == [5, 1207]
+    assert _actuals(engine)["value"].tolist() == [1.0, 2.0, 3.0]
+
+
+def test_json_lines_of_blank_lines_alone_are_a_file_without_rows(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    path = tmp_path / "empty.jsonl"
+    path.write_text("\n  \n\n", encoding="utf-8")
+    with pytest.raises(InputFileError, match="the file has no rows, only blank lines"):
+        ingest_path(engine, config, "actuals", path)

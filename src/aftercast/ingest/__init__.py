@@ -24,6 +24,7 @@ from aftercast.ingest.conflicts import find_conflicts, mark_conflicts
 from aftercast.ingest.files import (
     Chunk,
     content_hash,
+    file_format,
     file_parts,
     read_chunks,
     set_aside_invalid_text,
@@ -256,8 +257,9 @@ def ingest_path(engine: Engine, config: Config, kind: str, path: Path) -> Ingest
     rows = config.ingest.chunk_rows
     chunks = read_chunks(path, rows)
     first = next(chunks, None)
-    if first is None:
-        raise InputFileError(f"{path}: the file has a header but no rows")
+    if first is None:  # a CSV header alone, or JSON Lines of blank lines
+        what = "a header but no rows" if file_format(path) == "csv" else "no rows, only blank lines"
+        raise InputFileError(f"{path}: the file has {what}")
     require_columns(first.frame, REQUIRED[kind], str(path))
     second = next(chunks, None)
     head = [first] if second is None else [first, second]

@@ -39,6 +39,9 @@ FORMATS = {
 # a key that disagrees with another chunk's): this column holds why, and validation rejects the
 # row with that reason.
 PRE_REJECTED = "__rejected__"
+# A blank line of JSON Lines holds no row: it keeps its place, so that later rows keep their
+# line numbers, with this in PRE_REJECTED, and validation drops it without counting it.
+BLANK_LINE = "__blank__"
 
 
 @dataclass(frozen=True)
@@ -279,8 +282,24 @@ def _jsonl_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
             lines = list(islice(handle, chunk_rows))
             if not lines:
                 return
-            yield Chunk(set_aside_invalid_text(_parse_jsonl(path, lines, first)), first)
+            frame = _parse_jsonl_lines(path, lines, first)
+            if frame is not None:  # a chunk of blank lines alone has no rows, nor columns
+                yield Chunk(set_aside_invalid_text(frame), first)
             first += len(lines)
+
+
+def _parse_jsonl_lines(path: Path, lines: list[str], first: int) -> pd.DataFrame | None:
+    """The rows of a block of lines, a blank line (empty or only white space) as a `BLANK_LINE`
+    row in its place; None when every line is blank."""
+    blank = [i for i, line in enumerate(lines) if not line.strip()]
+    if not blank:
+        return _parse_jsonl(path, lines, first)
+    if len(blank) == len(lines):
+        return None
+    filled = np.setdiff1d(np.arange(len(lines)), blank)
+    frame = _parse_jsonl(path, [lines[i] for i in filled], first).set_axis(filled)
+    marks = pd.DataFrame({PRE_REJECTED: BLANK_LINE}, index=blank)
+    return pd.concat([frame, marks]).sort_index().reset_index(drop=True)
 
 
 def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
@@ -296,7 +315,7 @@ def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
     records: list[dict[str, object]] = []
     for offset, line in enumerate(lines):
         try:
-            value = json.loads(line) if line.strip() else {}
+            value = json.loads(line)
         except json.JSONDecodeError:
             value = None
         if not isinstance(value, dict):

@@ -24,7 +24,7 @@ from aftercast.ingest.cells import (
     number_values,
     time_values,
 )
-from aftercast.ingest.files import PRE_REJECTED
+from aftercast.ingest.files import BLANK_LINE, PRE_REJECTED
 from aftercast.periods import periods_by_series
 
 FORECAST_REQUIRED = ["series_id", "model", "issued_at", "target_at", "point"]
@@ -307,8 +307,8 @@ def _package(
     quantiles: pd.DataFrame | None = None,
 ) -> Checked:
     """Split into kept rows and rejections; exact repeats are neither (counted as unchanged)."""
-    is_repeat = (reasons.reason == "__repeat__").fillna(False).astype(bool)
-    reasons.reason[is_repeat] = pd.NA
+    is_repeat = reasons.reason.isin(["__repeat__", BLANK_LINE]).fillna(False).astype(bool)
+    reasons.reason[is_repeat] = pd.NA  # a blank line is neither a rejection nor a repeat
     kept = good.loc[~reasons.bad & ~is_repeat]
     checked = Checked(kept, _rejections(frame, reasons, first_row), repeats)
     if intervals is not None:
