@@ -15,7 +15,7 @@ import hashlib
 import io
 import json
 from collections import deque
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
@@ -276,33 +276,41 @@ def _parquet_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
 
 
 def _jsonl_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
-    first = 1
     with path.open("r", encoding="utf-8") as handle:
-        while True:
-            lines = list(islice(handle, chunk_rows))
-            if not lines:
-                return
-            frame = _parse_jsonl_lines(path, lines, first)
-            if frame is not None:  # a chunk of blank lines alone has no rows, nor columns
-                yield Chunk(set_aside_invalid_text(frame), first)
-            first += len(lines)
+        yield from jsonl_chunks(handle, chunk_rows)
 
 
-def _parse_jsonl_lines(path: Path, lines: list[str], first: int) -> pd.DataFrame | None:
+def jsonl_chunks(lines: Iterable[str], chunk_rows: int) -> Iterator[Chunk]:
+    """Chunks of `chunk_rows` lines of JSON Lines (a file, or a pulled body), a row's number
+    being its line number. A line that is not a JSON object is a row holding its reason; blank
+    lines are `BLANK_LINE` rows, dropped by validation; a chunk of blank lines alone is none."""
+    source = iter(lines)
+    first = 1
+    while True:
+        block = list(islice(source, chunk_rows))
+        if not block:
+            return
+        frame = _parse_jsonl_lines(block)
+        if frame is not None:  # a chunk of blank lines alone has no rows, nor columns
+            yield Chunk(set_aside_invalid_text(frame), first)
+        first += len(block)
+
+
+def _parse_jsonl_lines(lines: list[str]) -> pd.DataFrame | None:
     """The rows of a block of lines, a blank line (empty or only white space) as a `BLANK_LINE`
     row in its place; None when every line is blank."""
     blank = [i for i, line in enumerate(lines) if not line.strip()]
     if not blank:
-        return _parse_jsonl(path, lines, first)
+        return _parse_jsonl(lines)
     if len(blank) == len(lines):
         return None
     filled = np.setdiff1d(np.arange(len(lines)), blank)
-    frame = _parse_jsonl(path, [lines[i] for i in filled], first).set_axis(filled)
+    frame = _parse_jsonl([lines[i] for i in filled]).set_axis(filled)
     marks = pd.DataFrame({PRE_REJECTED: BLANK_LINE}, index=blank)
     return pd.concat([frame, marks]).sort_index().reset_index(drop=True)
 
 
-def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
+def _parse_jsonl(lines: list[str]) -> pd.DataFrame:
     """Parse a block of JSON lines in C; only a block that fails is re-read line by line."""
     try:
         frame = pd.read_json(
@@ -313,7 +321,7 @@ def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
     except ValueError:
         pass
     records: list[dict[str, object]] = []
-    for offset, line in enumerate(lines):
+    for line in lines:
         try:
             value = json.loads(line)
         except json.JSONDecodeError:
@@ -322,7 +330,6 @@ def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
             # Keep the row so it is quarantined with its number instead of vanishing.
             value = {PRE_REJECTED: f"not a JSON object: {line.rstrip()[:200]}"}
         records.append(value)
-        del offset
     return pd.DataFrame.from_records(records)
 
 
