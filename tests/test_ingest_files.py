@@ -279,3 +279,17 @@ def test_json_lines_of_blank_lines_alone_are_a_file_without_rows(
     path.write_text("\n  \n\n", encoding="utf-8")
     with pytest.raises(InputFileError, match="the file has no rows, only blank lines"):
         ingest_path(engine, config, "actuals", path)
+
+
+def test_a_csv_line_of_white_space_is_blank_not_malformed(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    path = tmp_path / "actuals.csv"
+    path.write_text(
+        "series_id,observed_at,value\ns,2026-01-01,1\n  \t \ns,2026-01-02,x\ns,2026-01-03,3\n  \n",
+        encoding="utf-8",
+    )
+    report = ingest_path(engine, config, "actuals", path)
+    assert (report.accepted, report.rejected) == (2, 1)
+    # Rows as counted before: the third data line is row 3 (the blank one keeps its place).
+    assert _quarantine(engine).values.tolist() == [[3, "value is not a finite number: 'x'"]]

@@ -183,9 +183,11 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
     malformed: deque[tuple[int, str]] = deque()
 
     def set_aside(row: Any) -> str:
-        # The reader counts records from the header's, so the first data row is 2.
+        # The reader counts records from the header's, so the first data row is 2. It skips
+        # empty lines itself; a line of white space alone is as blank, not malformed.
         fields = f"{row.actual_columns} fields, the header has {row.expected_columns}"
-        malformed.append((int(row.number) - 1, f"malformed CSV line: {fields}"))
+        why = BLANK_LINE if not (row.text or "").strip() else f"malformed CSV line: {fields}"
+        malformed.append((int(row.number) - 1, why))
         return "skip"
 
     try:
