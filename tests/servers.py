@@ -17,6 +17,7 @@ import socket
 import ssl
 import subprocess
 import threading
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from email.message import EmailMessage
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -188,7 +189,8 @@ class HttpRecorder:
 
     `script` lists the statuses of the first answers (then `default_status`); `hang_seconds`
     makes every answer wait that long first (released early by `stop`); `reply_headers` are
-    added to every answer, e.g. {"Retry-After": "30"}; `reply_body` replaces the body.
+    added to every answer, e.g. {"Retry-After": "30"}; `reply_body` replaces the body;
+    `on_request` runs before each answer.
     """
 
     script: list[int] = field(default_factory=list)
@@ -197,6 +199,9 @@ class HttpRecorder:
     reply_headers: dict[str, str] = field(default_factory=dict)
     reply_body: str | None = None
     requests: list[ReceivedRequest] = field(default_factory=list)
+    # Called with the number of the request (1 = first) before it is answered, e.g. to let
+    # another deliverer run while a send is in flight.
+    on_request: Callable[[int], None] | None = None
 
     def __post_init__(self) -> None:
         self._lock = threading.Lock()
@@ -227,7 +232,11 @@ class HttpRecorder:
     def _next_status(self, request: ReceivedRequest) -> int:
         with self._lock:
             self.requests.append(request)
-            return self.script.pop(0) if self.script else self.default_status
+            count = len(self.requests)
+            status = self.script.pop(0) if self.script else self.default_status
+        if self.on_request is not None:
+            self.on_request(count)
+        return status
 
     def _handler_class(self) -> type[BaseHTTPRequestHandler]:
         recorder = self

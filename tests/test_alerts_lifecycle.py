@@ -37,6 +37,7 @@ from tests.test_alerts_support import (
 )
 
 NOW = START + 22 * DAY
+FILE_CHANNEL = {"name": "local", "type": "file", "path": "unused.jsonl"}
 
 
 @pytest.fixture
@@ -178,6 +179,23 @@ def test_without_channels_alerts_are_tracked_and_nothing_is_queued(store_url: st
     assert outbox(engine).empty
 
 
+def test_a_raise_without_channels_is_announced_once_a_channel_exists(store_url: str) -> None:
+    rule = {"detection": "coverage_low", "raise_after": 1, "remind_every_hours": 0}
+    quiet = make_config(store_url, rules=[rule])
+    engine = store(quiet)
+    flagged = findings(engine, [{"series": "store-17"}])
+    apply_findings(engine, quiet, flagged, 1, NOW)
+    assert alerts(engine)["state"].tolist() == ["raised"] and outbox(engine).empty
+    told = quiet.model_copy(
+        update={"channels": make_config(store_url, channels=[FILE_CHANNEL]).channels}
+    )
+    apply_findings(engine, told, flagged, 2, NOW + DAY)  # still raised; now there is a channel
+    apply_findings(engine, told, flagged, 3, NOW + 2 * DAY)  # told already: quiet
+    sent = outbox(engine)
+    assert sent["kind"].tolist() == ["digest"] and sent["channel"].tolist() == ["local"]
+    assert "store-17" in sent["payload"].iloc[0]
+
+
 def test_rule_thresholds_narrow_what_detection_flags(store_url: str) -> None:
     config = make_config(
         store_url,
@@ -198,3 +216,20 @@ def test_rule_thresholds_narrow_what_detection_flags(store_url: str) -> None:
     raised = alerts(engine).query("state == 'raised'")
     assert raised["fingerprint"].str.split("|").str[0].tolist() == ["coverage_low"]
     assert raised["horizon"].tolist() == ["1"] and raised["p_value"].tolist() == [0.001]
+
+
+def test_a_reminder_due_within_a_minute_of_the_cycle_goes_now(
+    store_url: str, smtp: SmtpRecorder
+) -> None:
+    config = mail_config(store_url, smtp.port, remind_every_hours=1, raise_after=1)
+    engine = store(config)
+    hour = 3600
+    run(engine, config, [True], start=NOW)  # raised: first message
+    # The next cycle fires 30 s before the hour is up (scheduler jitter): the reminder goes now.
+    run(engine, config, [True], start=NOW + hour - 30)
+    # Two minutes short of the next hour is too early: that reminder waits for the next cycle.
+    run(engine, config, [True], start=NOW + 2 * hour - 30 - 120)
+    assert outbox(engine)["kind"].tolist() == ["digest", "reminder"]
+    run(engine, config, [True], start=NOW + 2 * hour - 30)
+    assert outbox(engine)["kind"].tolist() == ["digest", "reminder", "reminder"]
+    assert len(smtp.messages) == 3

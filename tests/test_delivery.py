@@ -31,6 +31,7 @@ from aftercast.cli import main
 from aftercast.config import Config, load_config
 from aftercast.logs import configure_logging
 from aftercast.notify.deliver import deliver_due
+from aftercast.periods import to_iso
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
 from tests.servers import LOOPBACK, HttpRecorder, SmtpRecorder, free_port
@@ -113,9 +114,45 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     assert main(["--config", str(path), "alerts", "notifications"]) == 0
     out = capsys.readouterr().out
     assert "dead" in out and "gave up after 3 attempts" in out and "1 dead" in out
+    # A dead message is never tried again: no "next" time, though the row keeps its last due_at.
+    assert row["due_at"] is not None and "next" not in out
+    assert f"given up {to_iso(int(row['last_attempt_at']))}" in out
     assert main(["--config", str(path), "alerts", "notifications", "--json"]) == 0
     listed = json.loads(capsys.readouterr().out)
-    assert [(n["status"], n["attempts"]) for n in listed] == [("dead", 3)]
+    assert [(n["status"], n["attempts"], n["due_at"]) for n in listed] == [("dead", 3, None)]
+
+
+def test_a_dead_notification_retried_by_hand_goes_out_with_its_id(
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    path = tmp_path / "c.yaml"
+    path.write_text(f"store:\n  url: {store_url}\n")
+    with HttpRecorder(default_status=404) as server:  # a wrong URL: dead at once
+        engine, config = queue_one(store_url, [hook(server.url())], max_attempts=3)
+        deliver_due(engine, config)
+        key = str(outbox(engine)["notification_id"].iloc[0])
+        assert outbox(engine)["status"].tolist() == ["dead"]
+        capsys.readouterr()
+        assert main(["--config", str(path), "alerts", "notifications"]) == 0
+        assert "outbox retry" in capsys.readouterr().out  # the listing says how
+        server.default_status = 200  # the cause is fixed
+        assert main(["--config", str(path), "outbox", "retry", key, "--by", "ana"]) == 0
+        assert f"re-queued 1 dead notification(s), due now: {key}" in capsys.readouterr().out
+        row = outbox(engine).iloc[0]
+        assert (row["status"], int(row["attempts"]), row["detail"]) == (
+            "pending",
+            0,
+            "re-queued by ana",
+        )
+        assert deliver_due(engine, config).delivered == 1
+        assert [r.headers["webhook-id"] for r in server.requests] == [key, key]
+    assert outbox(engine)["status"].tolist() == ["delivered"]
+    assert main(["--config", str(path), "outbox", "retry", "--all-dead"]) == 0
+    assert "no dead notifications" in capsys.readouterr().out
+    for wrong in (["ntf_nope"], [key], []):  # unknown, not dead, nothing named
+        assert main(["--config", str(path), "outbox", "retry", *wrong]) != 0
+        seen = capsys.readouterr()
+        assert len((seen.out + seen.err).strip().splitlines()) == 1
 
 
 def test_permanent_refusal_is_dead_at_once(store_url: str) -> None:
@@ -159,6 +196,37 @@ def test_failing_channel_holds_back_the_rest_of_its_batch(store_url: str) -> Non
     # Only the first was tried; the second was handed back without counting an attempt.
     assert rows["attempts"].tolist() == [1, 0]
     assert rows["claimed_by"].isna().all()
+
+
+@pytest.mark.filterwarnings("ignore:Requiring AUTH while not requiring TLS")
+def test_refused_smtp_login_holds_the_channel_back_and_says_why(
+    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    with SmtpRecorder(logins={"alerts": "the-right-one"}) as smtp:
+        wrong = mail_channel(smtp.port, username="alerts", password="not-the-right-one")
+        with HttpRecorder() as server:
+            config = make_config(
+                store_url,
+                channels=[wrong, hook(server.url())],
+                rules=[{"detection": "coverage_low", "raise_after": 1, "remind_every_hours": 0}],
+            )
+            engine = make_engine(config.store.url)
+            migrate(engine)
+            seed(engine, config, {"s1": {}, "s2": {}, "s3": {}}, days=3)
+            for step, key in enumerate(("s1", "s2", "s3")):  # three cycles: three per channel
+                apply_findings(engine, config, findings(engine, [{"series": key}]), step, NOW)
+            report = deliver_due(engine, config)
+            assert len(server.requests) == 3  # the other channel is untouched
+    assert smtp.messages == []
+    mail = outbox(engine).query("channel == 'oncall-mail'")
+    # One attempt told the reason; the other two wait unattempted, none is given up.
+    assert sorted(mail["attempts"]) == [0, 0, 1] and set(mail["status"]) == {"pending"}
+    assert (report.delivered, report.retrying, report.dead) == (3, 1, 0)
+    path = tmp_path / "c.yaml"
+    path.write_text(f"store:\n  url: {store_url}\n")
+    assert main(["--config", str(path), "alerts", "notifications"]) == 0
+    out = capsys.readouterr().out
+    assert "refused the login of 'alerts' (535" in out and "username and password" in out
 
 
 DELIVERER = """
@@ -258,7 +326,7 @@ def test_secrets_never_reach_logs_output_or_the_store(
         smtp.stop()
         logging.getLogger().removeHandler(handler)
     rows = outbox(engine)
-    assert set(rows["status"]) == {"dead", "delivered"}  # login refused (535), hook done
+    assert set(rows["status"]) == {"pending", "delivered"}  # login refused (535), hook done
     seen = capsys.readouterr()
     stored = rows.to_json()
     for secret in (PASSWORD, SECRET, SECRET.removeprefix("whsec_"), TOKEN):

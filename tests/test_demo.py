@@ -48,6 +48,8 @@ def test_demo_runs_the_whole_job_and_leaves_its_files(
     # The late corrections file: four mistakes quarantined with their reasons, one revision.
     assert len(quarantined) == 4 and any(r.startswith("malformed CSV line") for r in quarantined)
     assert "0 accepted, 1 revised, 4 rejected" in printed
+    # ... and listed again by `aftercast quarantine`, each with its row number in that file.
+    assert printed.count("late-corrections.csv row ") == 4
     assert pairs > 0 and raised > 0
     # The config's series entry is applied on top of the series file's labels.
     labels = json.loads(labels)

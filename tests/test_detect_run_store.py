@@ -1,4 +1,4 @@
-"""The detection stage end to end on a store: findings, `alerts --json`, freshness checks.
+"""The detection stage end to end on a store: findings, `alerts findings --json`, freshness checks.
 
 The invented bakery scenario is fed day by day; a level shift of three noise standard
 deviations (the scenario's own definition) must come out as flagged findings with their
@@ -67,7 +67,7 @@ def test_a_level_shift_is_flagged_with_evidence_and_listed_by_alerts_json(
     tmp_path: Path,
     capsys: pytest.CaptureFixture[str],
 ) -> None:
-    """Healthy series are never flagged; `alerts --json` rows open where their run starts."""
+    """Healthy series are never flagged; `alerts findings --json` rows open where runs start."""
     _run(engine, detecting, scenario, 16, 39)
     found = _flags(engine)
     flagged = found.loc[found["flagged"] == 1]
@@ -92,7 +92,7 @@ def _check_alerts_json(
     path = tmp_path / "aftercast.yaml"
     path.write_text(json.dumps({"store": {"url": detecting.store.url}, **SECTIONS}))
     capsys.readouterr()
-    assert main(["--config", str(path), "alerts", "--json"]) == 0
+    assert main(["--config", str(path), "alerts", "findings", "--json"]) == 0
     rows = json.loads(capsys.readouterr().out)
     assert rows and {r["series_id"] for r in rows} == {SHIFTED}
     fields = {"series_id", "model", "horizon", "rule", "state", "active", "severity",

@@ -206,7 +206,9 @@ def test_login_over_plain_loopback_and_secrets_stay_hidden(
         assert server.messages[0].login == "alert-bot"
         bad = mail_channel(server.port, username="alert-bot", password=PASSWORD + "-wrong")
         refused = bad.deliver(sample_notification())
-    assert refused.status == "dead" and "535" in refused.detail  # RFC 4954: 535 bad credentials
+    # RFC 4954: 535 bad credentials; the channel's config is at fault, not the message.
+    assert refused.status == "retry" and "535" in refused.detail
+    assert "refused the login of 'alert-bot'" in refused.detail and "password" in refused.detail
     for channel in (good, bad):
         assert PASSWORD not in repr(channel.config) and PASSWORD not in str(channel.config)
         assert PASSWORD not in channel.config.model_dump_json()

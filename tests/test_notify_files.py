@@ -47,6 +47,22 @@ def test_appends_one_json_line_per_delivery_creating_folders(tmp_path: Path) -> 
     assert all(e["specversion"] == "1.0" for e in events)
 
 
+def test_a_line_left_cut_short_costs_only_itself(tmp_path: Path) -> None:
+    """A write cut short (full disk, crash) leaves part of a line with no newline; the next
+    delivery ends it first, so the notification sent again is a whole line of its own."""
+    path = tmp_path / "alerts.jsonl"
+    channel = file_channel(path)
+    assert channel.deliver(sample_notification(notification_id="a")).status == "delivered"
+    whole = path.read_bytes()
+    path.write_bytes(whole + whole[: len(whole) // 2])  # "b" was cut off half-way
+    assert channel.deliver(sample_notification(notification_id="b")).status == "delivered"
+    lines = path.read_bytes().split(b"\n")
+    assert lines[-1] == b"" and len(lines) == 4  # a, the cut-off part, b, end of file
+    assert json.loads(lines[0])["id"] == "a" and json.loads(lines[2])["id"] == "b"
+    with pytest.raises(json.JSONDecodeError):
+        json.loads(lines[1])
+
+
 def test_line_is_the_same_event_a_webhook_receives(tmp_path: Path) -> None:
     notification = sample_notification(series_id='store "17" é')
     path = tmp_path / "alerts.jsonl"

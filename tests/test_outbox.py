@@ -148,3 +148,35 @@ def test_concurrent_deliverers_send_each_notification_once(store_url: str) -> No
     with engine.connect() as connection:
         counts = outbox_counts(connection)
     assert counts == {"pending": 0, "retrying": 0, "delivered": 12, "dead": 0}
+
+
+def test_a_batch_outliving_its_lease_is_not_sent_twice(store_url: str) -> None:
+    """Each message's lease is renewed before its send, so one slow send cannot hand the rest
+    of the batch to another deliverer while the first still means to send it."""
+    clock: dict[str, int] = {}  # replica a's clock; b runs with its own `now`
+    b_reports = []
+
+    def during_send(number: int) -> None:
+        start = clock["start"]
+        if number == 1:  # a's first send took 40 s
+            clock["a"] = start + 40
+        elif number == 2:  # 70 s after a claimed its batch (lease 60 s), b looks for work
+            clock["a"] = start + 70
+            b_reports.append(deliver_due(engine, config, now=start + 70, worker="replica-b"))
+
+    with HttpRecorder(on_request=during_send) as server:
+        engine, config = raised_store(store_url, server.url())
+        config = config.model_copy(
+            update={"delivery": config.delivery.model_copy(update={"lease_seconds": 60})}
+        )
+        for step in range(3):  # three notifications, all due
+            rows = [{"series": f"s{i}"} for i in range(step + 1)]
+            apply_findings(engine, config, findings(engine, rows), step, NOW + step)
+        clock["start"] = clock["a"] = int(outbox(engine)["due_at"].max())  # all due from here
+        report = deliver_due(engine, config, now=lambda: clock["a"], worker="replica-a")
+        sent = Counter(r.headers["webhook-id"] for r in server.requests)
+    # b found only the third free: the second was renewed at 40 s until 100 s when a sent it.
+    assert [r.delivered for r in b_reports] == [1]
+    assert (report.delivered, report.lost) == (2, 1)
+    assert len(sent) == 3 and set(sent.values()) == {1}
+    assert set(outbox(engine)["status"]) == {"delivered"}

@@ -179,3 +179,21 @@ def test_csv_of_a_store_without_pairs_is_its_header_row(
         assert [header] == list(csv.reader(one))[:1]
     assert "series_id" in header and "error" in header
     assert Path("empty.jsonl").read_bytes() == b""  # JSON Lines: no pairs, no lines
+
+
+def test_dash_writes_to_standard_output_and_the_count_to_stderr(
+    store: tuple[Path, dict[tuple[str, int], dict[str, float]]],
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    """`-o -` (the usual convention for a pipe): the same bytes as the file, and stdout holds
+    nothing else, so `aftercast scores export -o - | ...` reads clean CSV or JSON Lines."""
+    config, _ = store
+    for fmt in ("csv", "jsonl"):
+        export = ["--config", str(config), "scores", "export", "--format", fmt]
+        assert main([*export, "-o", f"file.{fmt}"]) == 0
+        capsys.readouterr()
+        assert main([*export, "-o", "-"]) == 0
+        captured = capsys.readouterr()
+        assert captured.out == Path(f"file.{fmt}").read_text(encoding="utf-8")
+        assert captured.err.startswith("wrote ") and "standard output" in captured.err
+    assert not Path("-").exists()

@@ -362,6 +362,11 @@ def test_another_replica_pulling_a_source_makes_this_one_skip_it(
     result = pull_source(engine, config, config.sources[0])
     assert result is not None and result.ok
     assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 1
-    # The pull gave its lock back: nobody holds an advisory lock any more.
-    assert _scalar(engine, "SELECT COUNT(*) FROM pg_locks WHERE locktype = 'advisory'") == 0
+    # The pull gave its lock back: nobody holds an advisory lock on this database any more
+    # (pg_locks is the whole server's: other databases' sessions are not counted).
+    held = (
+        "SELECT COUNT(*) FROM pg_locks WHERE locktype = 'advisory' "
+        "AND database = (SELECT oid FROM pg_database WHERE datname = current_database())"
+    )
+    assert _scalar(engine, held) == 0
     engine.dispose()

@@ -99,6 +99,7 @@ def test_alerts_are_listed_acknowledged_and_shown(site: Fleet) -> None:
     )
     history = table(page.text, "alert-history")
     assert history and history[0][-2:] == ["ana", "on it"]
+    assert history[0][0] == f"#{alert['id']}"  # the id that `alerts ack ID` takes
 
     past = requests.post(
         f"{url}/snooze", json={"until": "2020-01-01T00:00:00Z"}, headers=AUTH, timeout=10

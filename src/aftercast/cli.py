@@ -32,8 +32,10 @@ COMMAND_MODULES = (
     "aftercast.commands.baselines",
     "aftercast.commands.backtest",
     "aftercast.commands.replay",
+    "aftercast.commands.quarantine",
     "aftercast.commands.alerts",  # before alert_actions, whose ack/snooze attach to `alerts`
     "aftercast.commands.alert_actions",
+    "aftercast.commands.outbox",
 )
 
 

@@ -166,6 +166,7 @@ def _show_rejections(console: Console, paths: DemoPaths, files: ScenarioFiles) -
     path.write_text("\n".join([header, *rows]) + "\n", encoding="utf-8")
     console.rule("[bold]A late file of corrections, with mistakes in it")
     _run(console, paths.config, "ingest", "actuals", str(path))
+    _run(console, paths.config, "quarantine", "--source", path.name)
 
 
 def _show_digests(console: Console, paths: DemoPaths) -> None:

@@ -95,4 +95,6 @@ def _chart(group: pd.DataFrame) -> ChartData:
         upper=values("upper"),
         coverage_times=[t for t, c in zip(times, coverage, strict=True) if not np.isnan(c)],
         coverage=[float(c) for c in coverage if not np.isnan(c)],
+        bucket=str(first["bucket"]),
+        horizon=int(first["horizon"]),
     )

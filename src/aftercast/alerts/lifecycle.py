@@ -11,11 +11,12 @@ is one alert however many cycles see it. Its states:
 
 A cleared fingerprint that trips again starts a new episode on the same alert. Messages go out
 when an alert is raised (one), while it stays raised and unacknowledged (a reminder every
-`remind_every_hours`), and when it clears (one, and only if its raise was told to anyone). While
-snoozed an alert is tracked as usual but raises and reminders wait; when the snooze ends and the
-alert is still raised, the message that was held back goes out at the next cycle. Everything
-here is pure and vectorised over all alerts: frames in, frames out; the store module reads and
-writes them.
+`remind_every_hours`, due up to `REMINDER_SLACK_SECONDS` early so that scheduler jitter does
+not push it a whole cycle late), and when it clears (one, and only if its raise was told to
+anyone). While snoozed an alert is tracked as usual but raises and reminders wait; when the
+snooze ends and the alert is still raised, the message that was held back goes out at the next
+cycle. Everything here is pure and vectorised over all alerts: frames in, frames out; the store
+module reads and writes them.
 """
 
 from __future__ import annotations
@@ -27,6 +28,7 @@ import pandas as pd
 
 PENDING, RAISED, ACKNOWLEDGED, CLEARED = "pending", "raised", "acknowledged", "cleared"
 OPEN_STATES = (PENDING, RAISED, ACKNOWLEDGED)
+REMINDER_SLACK_SECONDS = 60  # a reminder due this close after the cycle's clock counts as due
 STATES = (PENDING, RAISED, ACKNOWLEDGED, CLEARED)
 
 ALERT_COLUMNS = [
@@ -88,7 +90,11 @@ def empty_alerts() -> pd.DataFrame:
 
 
 def advance(
-    current: pd.DataFrame, evaluated: pd.DataFrame, parameters: pd.DataFrame, now: int
+    current: pd.DataFrame,
+    evaluated: pd.DataFrame,
+    parameters: pd.DataFrame,
+    now: int,
+    announce: bool = True,
 ) -> Advance:
     """Move every open alert, and every fingerprint whose rule is met, on by one cycle.
 
@@ -96,7 +102,9 @@ def advance(
     cycle's rule evaluation with `fingerprint`, `met`, `raise_after`, `clear_after`,
     `remind_seconds`, `summary` and the latest evidence; `parameters`: per-rule settings indexed
     by rule name, used for open alerts that were not evaluated this cycle (they count as not met;
-    those of a rule no longer in force clear after one cycle).
+    those of a rule no longer in force clear after one cycle). Without `announce` (no channel to
+    send to) no message is due and no alert counts as told, so a raise is announced at the first
+    cycle that has somewhere to send it.
     """
     cur = current.set_index("fingerprint")
     ev = evaluated.set_index("fingerprint")
@@ -141,6 +149,8 @@ def advance(
         frame[column] = frame[column].where(~(lapses | clears))
 
     kinds = _notices(frame, settings, raised_now, clears, now)
+    if not announce:
+        kinds[:] = ""
     frame["notified_at"] = frame["notified_at"].where(kinds == "", now)
     transitions = _transitions(frame, prev, lapses, clears, latest, settings)
     notices = pd.DataFrame({"fingerprint": keys[kinds != ""], "kind": kinds[kinds != ""]})
@@ -176,8 +186,11 @@ def _notices(
     notified = frame["notified_at"].astype(float).to_numpy()
     told = ~np.isnan(notified)
     remind = settings["remind_seconds"].to_numpy()
+    # A scheduler fires a little early or late; a reminder due within the slack of this cycle's
+    # clock goes now rather than a whole cycle late (never sooner than half its interval).
+    slack = np.minimum(REMINDER_SLACK_SECONDS, remind / 2)
     with np.errstate(invalid="ignore"):
-        reminder_due = told & (remind > 0) & (now - notified >= remind)
+        reminder_due = told & (remind > 0) & (now - notified >= remind - slack)
     up = (state == RAISED) & ~snoozed
     kinds = np.full(len(frame), "", dtype=object)
     kinds[up & ~told] = "raised"  # just raised, or held back by a snooze that has ended

@@ -10,6 +10,7 @@ ever holds a channel's configuration, so no secret can show.
 from __future__ import annotations
 
 import json
+import time
 from typing import Any
 
 import pandas as pd
@@ -44,13 +45,17 @@ def _clean(value: Any) -> Any:
     return value
 
 
-def alert_rows(connection: Connection, include_cleared: bool = False) -> list[dict[str, Any]]:
+def alert_rows(
+    connection: Connection, include_cleared: bool = False, now: int | None = None
+) -> list[dict[str, Any]]:
     """Alerts, worst first; open ones only unless `include_cleared`.
 
     Each row: id, series_id, model, horizon, rule, state, active (raised or acknowledged),
     severity, opened_at (start of the run of cycles that raised it), raised_at, cleared_at,
-    acknowledged_by/at, snoozed_until/by, statistic, p_value, summary, evidence and the latest
-    notification's status, attempts and detail.
+    acknowledged_by/at, snoozed_until/by, snoozed (a snooze still running at `now`, default
+    the clock), statistic, p_adjusted (the fleet-adjusted p-value the
+    rule read), summary, evidence (with the test's raw `p_value`) and the latest notification's
+    status, attempts and detail.
     """
     states = OPEN_STATES if not include_cleared else (*OPEN_STATES, "cleared")
     marks = ", ".join(f":s{i}" for i in range(len(states)))
@@ -63,14 +68,19 @@ def alert_rows(connection: Connection, include_cleared: bool = False) -> list[di
     frame = frame.assign(_r=frame["severity"].map(rank).fillna(3)).sort_values(
         ["_r", "p_value", "series_id"], na_position="last", kind="stable"
     )
+    clock = int(time.time()) if now is None else now
     rows = []
     for record in frame.drop(columns="_r").to_dict("records"):
         row = {k: _clean(v) for k, v in record.items()}
+        row["snoozed"] = row["snoozed_until"] is not None and row["snoozed_until"] > clock
         for name in _TIMES:
             row[name] = to_iso(row[name])
         row["opened_at"] = row.pop("since_at")
         row["active"] = row["state"] in (RAISED, ACKNOWLEDGED)
         row["evidence"] = json.loads(row["evidence"] or "{}")
+        # The alert's own p-value is the fleet-adjusted one; the test's raw p-value stays in the
+        # evidence (`evidence.p_value`, beside `evidence.p_adjusted`), so the names cannot mix.
+        row["p_adjusted"] = row.pop("p_value")
         rows.append(row)
     return rows
 

@@ -103,7 +103,8 @@ def build_digests(
     """One notification per (route, channel, kind) present in `routed`, worst alerts first.
 
     `routed` comes from `assign_routes` with, per line: alert_id, kind, series_id, model,
-    horizon, rule, state, severity, opened_at (ISO 8601), summary, evidence, labels, p_value.
+    horizon, rule, state, severity, opened_at (ISO 8601), summary, evidence, labels, p_value
+    and, for a cleared alert, cleared_at (ISO 8601).
     `charts` maps an alert id to its chart; the first `per_digest` alerts of a digest carry one.
     With `base_url` (the web pages), a digest links to its series' page, or to the overview
     when it is about several series.
@@ -156,6 +157,7 @@ def _line(row: Mapping[str, Any]) -> AlertLine:
         summary=str(row["summary"]),
         evidence=dict(row["evidence"] or {}),
         labels={str(k): str(v) for k, v in (row["labels"] or {}).items()},
+        cleared_at=row.get("cleared_at") or None,
     )
 
 

@@ -5,7 +5,8 @@ moves every alert on by one cycle, and turns the resulting messages into one dig
 channel and kind. The alert rows, their transitions and the outbox rows are written in ONE
 transaction, so a notification exists exactly when the state change it announces does; sending
 is the `notify` stage's job (`aftercast.notify.deliver.deliver_due`). With no channels
-configured, alerts are still tracked and nothing is queued.
+configured, alerts are still tracked and nothing is queued; an alert raised then is announced at
+the first cycle that has a channel.
 """
 
 from __future__ import annotations
@@ -106,7 +107,9 @@ def apply_findings(
                 strict=True,
             )
         ]
-        moved = advance(load_alerts(connection, evaluated), evaluated, rule_parameters(rules), now)
+        current = load_alerts(connection, evaluated)
+        parameters = rule_parameters(rules)
+        moved = advance(current, evaluated, parameters, now, announce=bool(config.channels))
         ids = save_advance(connection, moved, cycle_id, now)
         digests = _digests(connection, config, moved, ids, names, rules, now)
         queued = enqueue(connection, digests, cycle_id, int(time.time()))
@@ -138,6 +141,8 @@ def _lines(moved: Advance, ids: pd.Series, names: Names, rules: list[RuleConfig]
         series_labels, rule_labels, lines[["rule", "severity", "model"]]
     )
     lines["opened_at"] = lines["since_at"].map(lambda t: to_iso(t) or "")
+    cleared_at = lines["cleared_at"].where(lines["kind"] == "cleared")
+    lines["cleared_at"] = cleared_at.map(to_iso).astype(object)
     lines["state"] = np.where(lines["kind"] == "cleared", "cleared", lines["state"])
     return lines
 

@@ -5,7 +5,8 @@ back what changed (one executemany of updates, one bulk insert of new alerts and
 transitions). Acknowledge and snooze from the command line (and later the API) go through
 `set_attention`, which records each change as a transition with the person's name. On
 PostgreSQL the alert stage holds a transaction-scoped advisory lock, so two replicas running a
-cycle at once take turns instead of both raising the same alert.
+cycle at once take turns instead of both raising the same alert; `set_attention` takes the same
+lock, so an acknowledgement never lands on a state a cycle is rewriting.
 """
 
 from __future__ import annotations
@@ -162,10 +163,12 @@ def set_attention(
 ) -> int:
     """Acknowledge, snooze or unsnooze alerts, each recorded as a transition; returns the count.
 
-    Only raised alerts can be acknowledged (the others are left alone and not counted); any
-    open alert can be snoozed until a time, or unsnoozed.
+    Only raised alerts can be acknowledged and only open ones snoozed or unsnoozed (the others
+    are left alone and not counted). On PostgreSQL it waits for the alert
+    stage's lock first, so it reads the state a running cycle leaves, never one it is replacing.
     """
     with write(engine) as connection:
+        lock_alert_stage(connection)
         staged = stage_keys(connection, "attention", pd.DataFrame({"id": list(ids)}))
         rows = read_frame(
             connection, f"SELECT a.id, a.state FROM alerts a JOIN {staged} k ON k.id = a.id"
@@ -178,8 +181,10 @@ def set_attention(
                 "state": ACKNOWLEDGED,
             }
         elif action == "snooze":
+            rows = rows.loc[rows["state"].isin(OPEN_STATES)]  # a cleared alert has nothing to hold
             changes = {"snoozed_until": until, "snoozed_by": actor}
         else:
+            rows = rows.loc[rows["state"].isin(OPEN_STATES)]
             changes = {"snoozed_until": None, "snoozed_by": None}
         if rows.empty:
             return 0

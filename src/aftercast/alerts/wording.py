@@ -2,9 +2,10 @@
 
 The detect stage leaves numbers in each finding's evidence (coverage and level, recent and
 baseline MAE, skill against the benchmark, mean error and its direction, periods late...).
-This turns the ones a reader needs first into a sentence, with the p-value or statistic that
-says how sure it is; the message lists the rest of the evidence after it, and the suggested fix,
-when there is one, on its own line. Missing numbers fall back to the detection's description.
+This turns the ones a reader needs first into a sentence, with the fleet-adjusted p-value (or
+the statistic) that says how sure it is; the message lists the rest of the evidence after it,
+and the suggested fix, when there is one, on its own line. Missing numbers fall back to the
+detection's description.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ from collections.abc import Callable, Mapping
 from typing import Any
 
 from aftercast.alerts.rules import DETECTIONS
+from aftercast.notify.render import P_UNDERFLOW
 
 Evidence = Mapping[str, Any]
 
@@ -87,8 +89,9 @@ _SENTENCES: dict[str, Callable[[Evidence, float | None], str | None]] = {
 
 
 def _sureness(statistic: Any, p_value: Any) -> str:
+    # The findings an alert reads carry the fleet-adjusted p-value (Benjamini-Hochberg).
     if (p := _number(p_value)) is not None:
-        return f" (p = {p:.2g})"
+        return f" (adjusted p = {p:.2g})" if p > 0 else f" (adjusted p {P_UNDERFLOW})"
     if (s := _number(statistic)) is not None:
         return f" (statistic {s:.3g})"
     return ""
@@ -100,7 +103,7 @@ def summary_line(
     """The sentence a message shows for an alert.
 
     >>> summary_line("coverage_low", {"coverage": 0.55, "level": 80}, None, 1e-6, 40)
-    'The 80% interval covered 55% of 40 recent forecasts (p = 1e-06).'
+    'The 80% interval covered 55% of 40 recent forecasts (adjusted p = 1e-06).'
     >>> summary_line("bias", {}, 5.2, None)
     'Errors keep one sign (CUSUM or tracking signal) (statistic 5.2).'
     """

@@ -1,9 +1,7 @@
-"""Commands on alerts and their rules: `alerts ack|snooze|unsnooze|history|notifications`,
-`rules check`.
+"""Commands that act on alerts and explain their rules: `alerts ack|snooze|unsnooze`, `rules check`.
 
-The actions hang under the `alerts` command: when another module has registered `alerts`
-already, they attach to its parser, otherwise this module registers `alerts` itself, listing the
-alerts with their lifecycle state. Every change is recorded as a transition carrying the name
+The actions hang under the `alerts` command, which `aftercast.commands.alerts` registers (with
+the listings) before this module. Every change is recorded as a transition carrying the name
 given by `--by` (default: the login name). `rules check` explains the rules, routes and
 channels in force in words; the config was validated on loading, so reaching it means the
 configuration is valid. Channel secrets are never printed: channels are shown by name and type.
@@ -13,33 +11,22 @@ from __future__ import annotations
 
 import argparse
 import getpass
-import re
 import time
 from typing import Any
 
-from aftercast.alerts.listing import alert_rows, transitions_of
 from aftercast.alerts.routing import EVERY_ALERT, route_names
 from aftercast.alerts.rules import effective_rules, explain_rule, is_default
+from aftercast.alerts.snooze import snooze_end
 from aftercast.alerts.store import find_alert_ids, set_attention
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
 from aftercast.config import Config, load_config
 from aftercast.errors import AftercastError
-from aftercast.notify.outbox import DEAD, PENDING, notification_listing, outbox_counts
-from aftercast.periods import parse_instant, to_iso
-
-_DURATION = re.compile(r"^(\d+(?:\.\d+)?)\s*([mhdw])$")
-_UNIT_SECONDS = {"m": 60, "h": 3600, "d": 86_400, "w": 604_800}
+from aftercast.periods import to_iso
 
 
 def register(commands: Any) -> None:
-    alerts = commands.choices.get("alerts")
-    if alerts is None:
-        alerts = commands.add_parser("alerts", help="alerts with their state; ack and snooze")
-        alerts.add_argument("--json", action="store_true", help="print a JSON array")
-        alerts.add_argument("--all", action="store_true", help="include cleared alerts")
-        alerts.set_defaults(handler=cmd_alerts)
-    actions = _actions_of(alerts)
+    actions = _actions_of(commands.choices["alerts"])
     for name, verb in (("ack", "acknowledge"), ("snooze", "snooze"), ("unsnooze", "unsnooze")):
         action = actions.add_parser(name, help=f"{verb} alerts (by id, or all of one series)")
         action.add_argument("ids", nargs="*", type=int, metavar="ID")
@@ -49,17 +36,11 @@ def register(commands: Any) -> None:
         action.add_argument("--note", default="", help="why, kept with the transition")
         if name == "snooze":
             action.add_argument(
-                "--until", required=True, help="ISO 8601 time, or a duration: 30m, 4h, 2d, 1w"
+                "--until",
+                required=True,
+                help="ISO 8601 time (UTC when it has no offset), or a duration: 30m, 4h, 2d, 1w",
             )
         action.set_defaults(handler=cmd_attention, verb=verb)
-    history = actions.add_parser("history", help="every transition of one alert")
-    history.add_argument("alert_id", type=int, metavar="ID")
-    history.add_argument("--json", action="store_true")
-    history.set_defaults(handler=cmd_history)
-    sent = actions.add_parser("notifications", help="notifications waiting, retrying or dead")
-    sent.add_argument("--json", action="store_true")
-    sent.add_argument("--delivered", action="store_true", help="include delivered ones")
-    sent.set_defaults(handler=cmd_notifications)
 
     rules = commands.add_parser("rules", help="alert rules")
     rule_actions = rules.add_subparsers(dest="rules_action", metavar="ACTION", required=True)
@@ -69,27 +50,19 @@ def register(commands: Any) -> None:
 
 
 def _actions_of(parser: argparse.ArgumentParser) -> Any:
-    """The parser's sub-command group: the one another module made, else a new one."""
+    """The sub-command group `aftercast.commands.alerts` gave the `alerts` parser."""
     for action in parser._actions:
         if isinstance(action, argparse._SubParsersAction):
             return action
-    return parser.add_subparsers(dest="alert_action", metavar="ACTION")
+    raise LookupError("the alerts command has no sub-commands")
 
 
 def until_instant(text: str, now: int) -> int:
     """Epoch seconds of `--until`: an ISO 8601 time or a duration from now ("4h", "2d")."""
-    found = _DURATION.match(text.strip())
-    if found:
-        return now + int(float(found.group(1)) * _UNIT_SECONDS[found.group(2)])
     try:
-        moment = parse_instant(text)
-    except ValueError:
-        raise AftercastError(
-            f"--until {text!r} is neither an ISO 8601 time nor a duration like 4h or 2d"
-        ) from None
-    if moment <= now:
-        raise AftercastError(f"--until {text!r} is in the past")
-    return moment
+        return snooze_end(text, now)
+    except ValueError as exc:
+        raise AftercastError(f"--until {text!r} {exc}") from None
 
 
 def cmd_attention(args: argparse.Namespace) -> int:
@@ -108,93 +81,9 @@ def cmd_attention(args: argparse.Namespace) -> int:
     suffix = f" until {to_iso(until)}" if until is not None else ""
     past = {"acknowledge": "acknowledged", "snooze": "snoozed", "unsnooze": "unsnoozed"}
     print(f"{past[args.verb]} {done} of {len(ids)} alert(s){suffix} as {actor}")
-    if args.verb == "acknowledge" and done < len(ids):
-        print("only raised alerts can be acknowledged; the others were left as they are")
-    return 0
-
-
-def _alert_line(row: dict[str, Any]) -> str:
-    flags = []
-    if row["acknowledged_by"]:
-        flags.append(f"ack by {row['acknowledged_by']}")
-    if row["snoozed_until"]:
-        flags.append(f"snoozed until {row['snoozed_until']}")
-    if row["notification_status"] in (PENDING, DEAD) and row["notification_attempts"]:
-        flags.append(
-            f"notification {row['notification_status']} after "
-            f"{row['notification_attempts']} attempt(s): {row['notification_detail']}"
-        )
-    tail = f" [{'; '.join(flags)}]" if flags else ""
-    return (
-        f"#{row['id']} {row['state']:<12} {row['severity']:<8} {row['rule']} "
-        f"{row['series_id']} / {row['model']} h{row['horizon']} since {row['opened_at']}: "
-        f"{row['summary']}{tail}"
-    )
-
-
-def cmd_alerts(args: argparse.Namespace) -> int:
-    config = load_config(args.config)
-    engine = open_store(config)
-    with engine.connect() as connection:
-        rows = alert_rows(connection, include_cleared=args.all)
-        counts = outbox_counts(connection)
-    if args.json:
-        print_json(rows)
-        return 0
-    for row in rows:
-        print(_alert_line(row))
-    if not rows:
-        print("no open alerts" if not args.all else "no alerts")
-    failing = counts[DEAD] or counts["retrying"]
-    print(_counts_line(counts) + ("; see `aftercast alerts notifications`" if failing else ""))
-    return 0
-
-
-def _counts_line(counts: dict[str, int]) -> str:
-    return (
-        f"notifications: {counts[PENDING]} pending ({counts['retrying']} retrying), "
-        f"{counts['delivered']} delivered, {counts[DEAD]} dead"
-    )
-
-
-def cmd_history(args: argparse.Namespace) -> int:
-    engine = open_store(load_config(args.config))
-    with engine.connect() as connection:
-        find_alert_ids(connection, [args.alert_id])
-        rows = transitions_of(connection, args.alert_id)
-    if args.json:
-        print_json(rows)
-        return 0
-    for row in rows:
-        note = f" ({row['note']})" if row["note"] else ""
-        print(
-            f"{row['at']} {row['event']:<12} {row['from_state'] or '-'} -> {row['to_state']} "
-            f"by {row['actor']}{note}"
-        )
-    return 0
-
-
-def cmd_notifications(args: argparse.Namespace) -> int:
-    engine = open_store(load_config(args.config))
-    statuses = (PENDING, DEAD, "delivered") if args.delivered else (PENDING, DEAD)
-    with engine.connect() as connection:
-        frame = notification_listing(connection, statuses, limit=200)
-        counts = outbox_counts(connection)
-    for column in ("created_at", "due_at", "last_attempt_at", "delivered_at"):
-        frame[column] = [to_iso(v) for v in frame[column]]
-    rows = frame.astype(object).where(frame.notna(), None).to_dict("records")
-    if args.json:
-        print_json(rows)
-        return 0
-    for row in rows:
-        print(
-            f"{row['notification_id']} {row['status']:<9} {row['channel']} ({row['kind']}, "
-            f"{row['alert_count']} alerts) attempts {row['attempts']}, next {row['due_at']}: "
-            f"{row['detail'] or '-'}"
-        )
-    if not rows:
-        print("no notifications waiting or dead")
-    print(_counts_line(counts))
+    if done < len(ids):
+        which = "raised" if args.verb == "acknowledge" else "open (not cleared)"
+        print(f"only {which} alerts can be {past[args.verb]}; the others were left as they are")
     return 0
 
 

@@ -8,6 +8,7 @@ from __future__ import annotations
 import argparse
 import json
 import sys
+from contextlib import AbstractContextManager, nullcontext
 from importlib import resources
 from pathlib import Path
 from typing import Any, TextIO
@@ -165,7 +166,9 @@ def cmd_cycle(args: argparse.Namespace) -> int:
     return 0
 
 
-def _open_for_writing(path: Path) -> TextIO:
+def _open_for_writing(path: Path) -> AbstractContextManager[TextIO]:
+    if str(path) == "-":  # standard output, for a pipe; left open when the export is done
+        return nullcontext(sys.stdout)
     path.parent.mkdir(parents=True, exist_ok=True)
     return path.open("w", encoding="utf-8", newline="")
 
@@ -194,7 +197,10 @@ def cmd_scores(args: argparse.Namespace) -> int:
                 rows += len(frame)
     except OSError as exc:  # the store's errors are not OSErrors: this is the output file
         raise _cannot_write(output, exc) from None
-    print(f"wrote {rows} pairs to {output}")
+    if str(output) == "-":
+        print(f"wrote {rows} pairs to standard output", file=sys.stderr)
+    else:
+        print(f"wrote {rows} pairs to {output}")
     return 0
 
 
@@ -266,7 +272,9 @@ def register(commands: Any) -> None:
     scores_commands = scores.add_subparsers(dest="scores_command", required=True)
     export = scores_commands.add_parser("export", help="write the pairs to a file")
     export.add_argument("--format", choices=["csv", "jsonl"], default="csv")
-    export.add_argument("-o", "--output", type=Path, required=True, metavar="PATH")
+    export.add_argument(
+        "-o", "--output", type=Path, required=True, metavar="PATH", help="a file, or - for stdout"
+    )
     export.set_defaults(handler=cmd_scores)
 
     demo = commands.add_parser("demo", help="the whole job end to end on an invented scenario")

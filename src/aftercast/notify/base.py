@@ -40,6 +40,7 @@ class AlertLine:
     summary: str  # one human sentence: what, how bad
     evidence: dict[str, Any] = field(default_factory=dict)
     labels: dict[str, str] = field(default_factory=dict)
+    cleared_at: str | None = None  # ISO 8601 UTC, when a cleared alert cleared
 
 
 @dataclass(frozen=True)
@@ -56,6 +57,20 @@ class ChartData:
     upper: list[float | None]
     coverage_times: list[str] = field(default_factory=list)
     coverage: list[float | None] = field(default_factory=list)
+    bucket: str = ""  # the alert's horizon bucket: "1", "2-7", "all" ("" from older rows)
+    horizon: int | None = None  # the horizon drawn: the shortest of the bucket
+
+    def horizon_words(self) -> str:
+        """Which forecasts the chart shows, e.g. "horizons 2-7 (drawn: horizon 2)".
+
+        >>> ChartData("s", "m", 80, [], [], [], [], [], bucket="2-7", horizon=2).horizon_words()
+        'horizons 2-7 (drawn: horizon 2)'
+        """
+        drawn = f"horizon {self.horizon}" if self.horizon is not None else ""
+        if self.bucket in ("", str(self.horizon)):
+            return drawn
+        named = "all horizons" if self.bucket == "all" else f"horizons {self.bucket}"
+        return f"{named} (drawn: {drawn})" if drawn else named
 
 
 @dataclass(frozen=True)

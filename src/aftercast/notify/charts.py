@@ -142,8 +142,9 @@ def _figure(chart: ChartData) -> Figure:
         ax.grid(True, color="#dddddd", linewidth=0.6)
         ax.spines[["top", "right"]].set_visible(False)
     # Series ids are user data: never let a "$" switch on mathtext.
+    horizon = chart.horizon_words()
     band_ax.set_title(
-        f"{chart.series_id} / {chart.model}",
+        f"{chart.series_id} / {chart.model}" + (f", {horizon}" if horizon else ""),
         loc="left",
         fontsize=FONT_SIZE + 1,
         fontweight="bold",

@@ -25,7 +25,16 @@ from sqlalchemy import Engine
 from aftercast.config import Config
 from aftercast.logs import log_event
 from aftercast.notify import Channel, DeliveryOutcome, Notification, build_channel
-from aftercast.notify.outbox import DEAD, DELIVERED, PENDING, Claim, claim_due, finish, release
+from aftercast.notify.outbox import (
+    DEAD,
+    DELIVERED,
+    PENDING,
+    Claim,
+    claim_due,
+    finish,
+    release,
+    renew,
+)
 
 log = logging.getLogger("aftercast.notify")
 
@@ -38,6 +47,7 @@ class DeliveryReport:
     delivered: int = 0
     retrying: int = 0
     dead: int = 0
+    lost: int = 0  # claims another deliverer took over before this one sent them
     failures: list[str] = field(default_factory=list)
 
     def as_json(self) -> dict[str, Any]:
@@ -56,13 +66,17 @@ def build_channels(config: Config) -> dict[str, Channel]:
 def deliver_due(
     engine: Engine,
     config: Config,
-    now: int | None = None,
+    now: int | Callable[[], int] | None = None,
     *,
     worker: str | None = None,
     channels: Mapping[str, Channel] | None = None,
     rng: random.Random | None = None,
 ) -> DeliveryReport:
-    """Send every notification due at `now` (default: the clock, read at each step)."""
+    """Send every notification due at `now` (default: the clock, read at each step).
+
+    `now` may also be a function giving the time (a test's own clock); it is read at every
+    claim, lease renewal and outcome.
+    """
     delivery = config.delivery
     worker = worker or worker_name()
     channels = build_channels(config) if channels is None else channels
@@ -78,6 +92,9 @@ def deliver_due(
             if claim.channel in failing:
                 held_back.append(claim)
                 continue
+            if not renew(engine, claim, worker, clock(), delivery.lease_seconds):
+                report.lost += 1  # its lease lapsed and another deliverer took it over
+                continue
             outcome = _send(channels, claim)
             status = finish(engine, claim, outcome, worker, clock(), delivery, rng)
             _count(report, claim, outcome, status)
@@ -91,9 +108,12 @@ def deliver_due(
     return report
 
 
-def _clock(now: int | None) -> Callable[[], int]:
+def _clock(now: int | Callable[[], int] | None) -> Callable[[], int]:
+    if callable(now):
+        return now
     if now is not None:
-        return lambda: now
+        fixed = now
+        return lambda: fixed
     return lambda: int(time.time())
 
 

@@ -3,8 +3,11 @@
 Each line is the same CloudEvent the webhook channel POSTs, so a script that reads the file can
 later read a webhook instead, and the other way round. The line goes out in a single `write` on
 a file opened for appending, then is fsynced, so concurrent writers do not interleave within a
-line and a crash never leaves half a notification behind a delivered outcome. Readers drop
-repeats by the event `id`, as webhook receivers do. Used by the demo and by air-gapped sites.
+line and a crash never leaves half a notification behind a delivered outcome. A line cut short
+(a full disk, a crash mid-write) is ended with a newline before the next line is written, so it
+is the only line lost and its notification, not delivered, is sent again. Readers skip lines
+that are not JSON and drop repeats by the event `id`, as webhook receivers do. Used by the demo
+and by air-gapped sites.
 """
 
 from __future__ import annotations
@@ -46,8 +49,11 @@ class FileChannel(Channel):
         folder = self.path.parent
         folder.mkdir(parents=True, exist_ok=True)
         created = not self.path.exists()
-        fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        fd = os.open(self.path, os.O_RDWR | os.O_APPEND | os.O_CREAT, 0o644)
         try:
+            size = os.fstat(fd).st_size
+            if size and os.pread(fd, 1, size - 1) != b"\n":
+                line = b"\n" + line  # end a line an earlier write left cut short
             written = os.write(fd, line)
             if written != len(line):
                 raise OSError(errno.EIO, f"short write ({written} of {len(line)} bytes)")

@@ -4,9 +4,11 @@ The message is multipart/alternative: a plain-text part, then a multipart/relate
 the HTML and one PNG per chart, referenced by Content-ID. `Message-ID` and
 `X-Aftercast-Notification-Id` carry the idempotency key, so a retried message can be recognised
 as a repeat. SMTP replies are sorted the way RFC 5321 means them: 4xx and any network trouble
-(refused, reset, timed out) are worth retrying, 5xx is a permanent no. Security is "starttls"
-by default, so a password never crosses the network in clear unless the config says so. The
-module is called `mail`, not `email`, so that it can never shadow the standard library package.
+(refused, reset, timed out) are worth retrying, 5xx is a permanent no, except a refused login
+(535), which is the channel's configuration and no fault of the message: it is retried.
+Security is "starttls" by default, so a password never crosses the network in clear unless the
+config says so. The module is called `mail`, not `email`, so that it can never shadow the
+standard library package.
 """
 
 from __future__ import annotations
@@ -131,6 +133,15 @@ def _classify(exc: smtplib.SMTPException | OSError, cfg: EmailChannelConfig) -> 
     timed_out = isinstance(exc.__context__, TimeoutError)  # smtplib wraps read timeouts
     if isinstance(exc, TimeoutError) or timed_out:
         return DeliveryOutcome.retry(f"{where} did not answer within {cfg.timeout_seconds:g}s")
+    if isinstance(exc, smtplib.SMTPAuthenticationError):
+        # The login, not the message, was refused: every message of this channel would fail
+        # the same way until its username or password is fixed, so each is kept for a retry
+        # (the deliverer holds the channel's other messages back) instead of given up at once.
+        reply = _reply(exc.smtp_code, exc.smtp_error)
+        return DeliveryOutcome.retry(
+            f"{where} refused the login of {cfg.username!r} ({reply}): check the channel's "
+            "username and password"
+        )
     if isinstance(exc, smtplib.SMTPRecipientsRefused):
         codes = [code for code, _ in exc.recipients.values()]
         replies = "; ".join(f"{r}: {_reply(c, t)}" for r, (c, t) in exc.recipients.items())

@@ -4,12 +4,13 @@ The alert stage calls `enqueue` inside the same transaction that records the tra
 notification exists exactly when its state change does. A deliverer then `claim_due`s rows in a
 short transaction: on PostgreSQL with `SELECT ... FOR UPDATE SKIP LOCKED`, so replicas claiming at
 the same moment take different rows, and on both stores by writing a lease (`claimed_by`,
-`claimed_until`), so a row stays claimed after that transaction ends. The attempt is counted at
-claim time: a notification that crashes its sender is still given up after `max_attempts`. The
-send happens outside any transaction, and `finish` records the outcome only if the claim is
-still ours. A deliverer killed between send and `finish` leaves the row claimed until the lease
-lapses; another deliverer then sends it again with the same id, which receivers drop. So a crash
-can repeat a message, never lose one.
+`claimed_until`), so a row stays claimed after that transaction ends; each row's lease is
+renewed right before it is sent, so a long batch cannot outlive its claim. The attempt is
+counted at claim time: a notification that crashes its sender is still given up after
+`max_attempts`. The send happens outside any transaction, and `finish` records the outcome
+only if the claim is still ours. A deliverer killed between send and `finish` leaves the row
+claimed until the lease lapses; another deliverer then sends it again with the same id, which
+receivers drop. So a crash can repeat a message, never lose one.
 """
 
 from __future__ import annotations
@@ -23,6 +24,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Connection, Engine, case, func, select, update
 
+from aftercast.errors import AftercastError
 from aftercast.notify.base import DeliveryOutcome, Digest
 from aftercast.settings.alerts import DeliveryConfig
 from aftercast.store.bulk import allocate_ids, insert_frame, read_frame
@@ -116,6 +118,24 @@ def claim_due(
     return [Claim(int(r[0]), str(r[1]), str(r[2]), str(r[3]), int(r[4])) for r in rows]
 
 
+def renew(engine: Engine, claim: Claim, worker: str, now: int, lease_seconds: float) -> bool:
+    """Extend the lease of `claim` from `now`, just before sending it; False if it is not ours.
+
+    A batch is claimed at once but sent one by one, so the last of a slow batch could outlive
+    the lease it was claimed with, be claimed by another deliverer and go out twice. Renewed
+    right before its own send, each message is leased for the full `lease_seconds` of that
+    send; one that another deliverer took meanwhile is left to it.
+    """
+    t = notification_outbox
+    with write(engine) as connection:
+        done = connection.execute(
+            update(t)
+            .where(t.c.id == claim.id, t.c.claimed_by == worker, t.c.status == PENDING)
+            .values(claimed_until=now + math.ceil(lease_seconds))
+        )
+    return bool(done.rowcount)
+
+
 def retry_delay(
     attempt: int,
     delivery: DeliveryConfig,
@@ -183,6 +203,47 @@ def release(engine: Engine, claims: Sequence[Claim], worker: str) -> None:
         )
 
 
+def requeue_dead(
+    engine: Engine, notification_ids: Sequence[str] | None, actor: str, now: int
+) -> list[str]:
+    """Put dead notifications back in the queue, due at `now` with a fresh count of attempts.
+
+    `notification_ids` names them (their idempotency keys, as `alerts notifications` lists
+    them); None takes every dead one. Naming one that is not dead is a user error. Returns the
+    keys re-queued. A re-sent message keeps its key, so a receiver that got it after all drops it.
+    """
+    t = notification_outbox
+    with write(engine) as connection:
+        query = select(t.c.notification_id, t.c.status)
+        if notification_ids is None:
+            query = query.where(t.c.status == DEAD)
+        else:
+            query = query.where(t.c.notification_id.in_(list(notification_ids)))
+        found = dict(connection.execute(query).tuples().all())
+        for key in notification_ids or ():
+            if key not in found:
+                raise AftercastError(
+                    f"no notification {key!r}; `aftercast alerts notifications` lists them"
+                )
+            if found[key] != DEAD:
+                raise AftercastError(f"notification {key!r} is {found[key]}, not dead")
+        chosen = sorted(found)
+        if chosen:
+            connection.execute(
+                update(t)
+                .where(t.c.notification_id.in_(chosen), t.c.status == DEAD)
+                .values(
+                    status=PENDING,
+                    attempts=0,
+                    due_at=now,
+                    claimed_by=None,
+                    claimed_until=None,
+                    detail=f"re-queued by {actor}",
+                )
+            )
+    return chosen
+
+
 def outbox_counts(connection: Connection) -> dict[str, int]:
     """Notifications by status, with `retrying` = pending ones that have failed at least once."""
     t = notification_outbox
@@ -199,12 +260,17 @@ def outbox_counts(connection: Connection) -> dict[str, int]:
 def notification_listing(
     connection: Connection, statuses: Sequence[str] = (PENDING, DEAD), limit: int = 50
 ) -> pd.DataFrame:
-    """Latest notifications in `statuses`: what waits, retries or was given up on, and why."""
+    """Latest notifications in `statuses`: what waits, retries or was given up on, and why.
+
+    `due_at` (the next attempt) is null once a notification is delivered or dead: neither is
+    ever tried again, whatever time the row kept from its last retry.
+    """
     marks = ", ".join(f":s{i}" for i in range(len(statuses)))
     return read_frame(
         connection,
         "SELECT id, notification_id, channel, route, kind, alert_count, status, attempts, "
-        f"created_at, due_at, last_attempt_at, delivered_at, detail FROM notification_outbox "
+        f"created_at, CASE WHEN status = '{PENDING}' THEN due_at END AS due_at, "
+        "last_attempt_at, delivered_at, detail FROM notification_outbox "
         f"WHERE status IN ({marks}) ORDER BY id DESC LIMIT :n",
         {**{f"s{i}": s for i, s in enumerate(statuses)}, "n": limit},
     )

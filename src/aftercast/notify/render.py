@@ -19,14 +19,27 @@ from urllib.parse import quote, urlsplit
 
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
-from aftercast.notify.base import AlertLine, Notification, jsonable
+from aftercast.notify.base import AlertLine, ChartData, Notification, jsonable
 from aftercast.settings.channels import SUBJECT_PREFIX
 
 SUBJECT_MAX_CHARS = 160
 SEVERITY_RANK = {"critical": 0, "warning": 1, "info": 2}
 EVENT_TYPE_PREFIX = "org.aftercast.alert."
 # Shown first and in this order; anything else follows alphabetically.
-EVIDENCE_ORDER = ("statistic", "p_value", "n", "coverage", "level", "window_start", "window_end")
+EVIDENCE_ORDER = (
+    "statistic",
+    "p_adjusted",
+    "p_value",
+    "n",
+    "coverage",
+    "level",
+    "window_start",
+    "window_end",
+)
+# Evidence keys whose plain spelling would mislead: which p-value is the fleet-adjusted one.
+EVIDENCE_LABELS = {"p_adjusted": "adjusted p", "p_value": "raw p"}
+# A p-value computed as 0.0 (the tail probability underflowed): true p is only known to be tiny.
+P_UNDERFLOW = "< 1e-300"
 
 _env = Environment(
     loader=PackageLoader("aftercast.notify", "templates"),
@@ -50,12 +63,17 @@ def utc_timestamp(text: str) -> str:
     return moment.astimezone(UTC).isoformat().replace("+00:00", "Z")
 
 
-def format_value(value: Any) -> str:
-    """A number short enough for a phone screen; tiny p-values keep their exponent.
+def format_value(value: Any, p_value: bool = False) -> str:
+    """A number short enough for a phone screen; tiny p-values keep their exponent, and one
+    that underflowed to 0 says it is below what a double holds rather than "0".
 
     >>> format_value(0.000012), format_value(1.23456), format_value(40)
     ('1.20e-05', '1.235', '40')
+    >>> format_value(0.0, p_value=True)
+    '< 1e-300'
     """
+    if p_value and value == 0:
+        return P_UNDERFLOW
     if isinstance(value, float):
         if value != 0 and abs(value) < 1e-3:
             return f"{value:.2e}"
@@ -64,14 +82,51 @@ def format_value(value: Any) -> str:
 
 
 def worst_alert(alerts: list[AlertLine]) -> AlertLine | None:
-    """The alert to name in a subject: highest severity, then the smallest p-value."""
+    """The alert to name in a subject: highest severity, then the smallest adjusted p-value.
+
+    The fleet-adjusted p-value is the one the alert was raised on; a raw p-value is only used
+    for evidence that has no adjusted one.
+    """
 
     def rank(alert: AlertLine) -> tuple[int, float]:
-        p_value = alert.evidence.get("p_value")
+        p_value = alert.evidence.get("p_adjusted", alert.evidence.get("p_value"))
         p = float(p_value) if isinstance(p_value, int | float) else 1.0
         return SEVERITY_RANK.get(alert.severity, len(SEVERITY_RANK)), p
 
     return min(alerts, key=rank) if alerts else None
+
+
+def window_words(window: Any) -> str | None:
+    """The evidence window as a reader would say it, or None when it is not a window object.
+
+    A `days` window has a start, a `points` window its number of target periods (the detect
+    stage's `window` evidence).
+
+    >>> window_words({"name": "recent", "start": "2024-04-03T00:00:00Z",
+    ...               "end": "2024-05-01T00:00:00Z", "targets": 28})
+    'targets of the last 28 days (2024-04-03T00:00:00Z to 2024-05-01T00:00:00Z)'
+    >>> window_words({"name": "recent", "points": 60, "end": "2024-05-01T00:00:00Z"})
+    'the 60 latest targets (up to 2024-05-01T00:00:00Z)'
+    """
+    if not isinstance(window, dict) or not isinstance(window.get("end"), str):
+        return None
+    end = _display_time(window["end"])
+    points, start = window.get("points"), window.get("start")
+    if isinstance(points, int | float) and not isinstance(points, bool):
+        latest = "the latest target" if points == 1 else f"the {points:g} latest targets"
+        return f"{latest} (up to {end})"
+    if not isinstance(start, str):
+        return None
+    try:
+        days = (_instant(window["end"]) - _instant(start)).total_seconds() / 86_400
+    except ValueError:
+        return None
+    span = "day" if round(days, 2) == 1 else f"{round(days, 2):g} days"
+    return f"targets of the last {span} ({_display_time(start)} to {end})"
+
+
+def _instant(text: str) -> datetime:
+    return datetime.fromisoformat(utc_timestamp(text).replace("Z", "+00:00"))
 
 
 def where(alert: AlertLine) -> str:
@@ -125,6 +180,10 @@ def safe_token(text: str) -> str:
 def _alert_view(alert: AlertLine) -> dict[str, Any]:
     evidence = dict(alert.evidence)
     fix = evidence.pop("suggested_fix", None)
+    cleared = alert.state == "cleared"
+    window = window_words(evidence.get("window"))
+    if window is not None:
+        del evidence["window"]  # said in words on its own line
     keys = [k for k in EVIDENCE_ORDER if k in evidence]
     keys += sorted(k for k in evidence if k not in EVIDENCE_ORDER)
     horizon = "all horizons" if alert.horizon == "all" else f"horizon {alert.horizon}"
@@ -135,9 +194,18 @@ def _alert_view(alert: AlertLine) -> dict[str, Any]:
         "rule": alert.rule.replace("_", " "),
         "opened": _display_time(alert.opened_at),
         "labels": ", ".join(f"{k}={v}" for k, v in sorted(alert.labels.items())),
-        "evidence": [(k.replace("_", " "), format_value(evidence[k])) for k in keys],
-        "fix": None if fix is None else str(fix),
+        "evidence": [
+            (_label(k), format_value(evidence[k], k in EVIDENCE_LABELS)) for k in keys
+        ],
+        # A fix for a problem that has gone away would only be noise.
+        "fix": None if fix is None or cleared else str(fix),
+        "cleared": _display_time(alert.cleared_at) if cleared and alert.cleared_at else None,
+        "window": window,
     }
+
+
+def _label(key: str) -> str:
+    return EVIDENCE_LABELS.get(key, key.replace("_", " "))
 
 
 def _display_time(text: str) -> str:
@@ -152,8 +220,7 @@ def _context(n: Notification, inline_charts: bool) -> dict[str, Any]:
     charts = [
         {
             "cid": chart_content_id(n, i),
-            "caption": f"{c.series_id} / {c.model}: actuals against the {format_value(c.level)}%"
-            " band, and its rolling coverage",
+            "caption": _caption(c),
         }
         for i, c in enumerate(n.charts)
     ]
@@ -166,6 +233,14 @@ def _context(n: Notification, inline_charts: bool) -> dict[str, Any]:
         "dashboard_url": url,
         "charts": charts if inline_charts else [],
     }
+
+
+def _caption(chart: ChartData) -> str:
+    where = f"{chart.series_id} / {chart.model}"
+    horizon = chart.horizon_words()
+    where = f"{where}, {horizon}" if horizon else where
+    band = f"{format_value(chart.level)}% band"
+    return f"{where}: actuals against the {band}, and its rolling coverage"
 
 
 def _is_web_url(url: str) -> bool:

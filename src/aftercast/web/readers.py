@@ -18,7 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from sqlalchemy import Engine
 
 from aftercast.config import Config
-from aftercast.periods import iso_texts, parse_instant, to_iso
+from aftercast.periods import iso_texts, to_iso
 from aftercast.report import status_json
 from aftercast.store.bulk import read_frame
 from aftercast.store.queries import PAIR_SELECT, intervals_for, quantiles_for
@@ -208,12 +208,12 @@ def alert_action(engine: Engine, alert_id: int, action: str, body: dict[str, Any
     now = clock()
     until = None
     if action == "snooze":
+        from aftercast.alerts.snooze import snooze_end
+
         try:
-            until = parse_instant(body["until"])
-        except (ValueError, OverflowError):
-            raise ValueError(f"until: {body['until']!r} is not an ISO 8601 time") from None
-        if until <= now:
-            raise ValueError(f"until: {body['until']!r} is in the past")
+            until = snooze_end(body["until"], now, durations=False)
+        except ValueError as exc:
+            raise ValueError(f"until: {body['until']!r} {exc}") from None
     try:
         with engine.connect() as connection:
             ids = find_alert_ids(connection, [alert_id])
