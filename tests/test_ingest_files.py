@@ -9,6 +9,7 @@ malformed line the row numbers counted by hand. Both stores.
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pandas as pd
@@ -124,6 +125,22 @@ def test_malformed_csv_lines_are_rejected_in_place_and_the_rest_kept(
     stored = _actuals(engine).set_index("value")
     expected = {float(i) for i in range(ROWS)} - {1000.0, 1700.0}
     assert set(stored.index) == expected
+    # The quarantine keeps each line as written, since it has no cells to show.
+    with engine.connect() as connection:
+        raw = read_frame(connection, "SELECT raw FROM quarantine ORDER BY row_number")["raw"]
+    assert [json.loads(r) for r in raw] == [{"line": rows[1000]}, {"line": "s1"}]
+    assert report.rejected_reasons == {"malformed CSV line": 2}
+
+
+def test_a_long_malformed_line_is_kept_cut_with_its_length(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    line = "s1,2026-01-01T00:00:00Z,1," + "x" * 5_000
+    path = _write(tmp_path / "actuals.csv", "series_id,observed_at,value", [line])
+    ingest_path(engine, config, "actuals", path)
+    with engine.connect() as connection:
+        raw = json.loads(connection.execute(text("SELECT raw FROM quarantine")).scalar_one())
+    assert raw == {"line": line[:2_000], "line_length": len(line)}
 
 
 def test_ingesting_again_stores_no_second_quarantine_row_and_no_phantom_series(

@@ -39,6 +39,11 @@ FORMATS = {
 # a key that disagrees with another chunk's): this column holds why, and validation rejects the
 # row with that reason.
 PRE_REJECTED = "__rejected__"
+# What such a row held, as the quarantine's `raw` JSON, when the reader had no cells to give:
+# a malformed CSV line is kept as {"line": its text} (cut to LINE_KEPT characters).
+PRE_RAW = "__raw__"
+MARKERS = (PRE_REJECTED, PRE_RAW)
+LINE_KEPT = 2_000
 # A blank line of JSON Lines holds no row: it keeps its place, so that later rows keep their
 # line numbers, with this in PRE_REJECTED, and validation drops it without counting it.
 BLANK_LINE = "__blank__"
@@ -144,12 +149,12 @@ class TextBlock:
 
     table: Any
     first_row: int
-    malformed: list[tuple[int, str]]
+    malformed: list[tuple[int, str, str]]  # number, reason, the line's text
 
     def _positions(self) -> tuple[np.ndarray, np.ndarray]:
         """Places of the table's rows and of the malformed lines within the chunk."""
         total = self.table.num_rows + len(self.malformed)
-        wanted = np.array([number - self.first_row for number, _ in self.malformed], dtype=int)
+        wanted = np.array([line[0] - self.first_row for line in self.malformed], dtype=int)
         # Kept in order and inside the chunk whatever numbers the reader gave.
         bad = np.maximum.accumulate(np.maximum(wanted, 0) - np.arange(len(wanted)))
         bad = np.minimum(bad, self.table.num_rows) + np.arange(len(wanted))
@@ -164,7 +169,13 @@ class TextBlock:
         if not self.malformed:
             return Chunk(frame, self.first_row)
         rows, bad = self._positions()
-        reasons = pd.DataFrame({PRE_REJECTED: [reason for _, reason in self.malformed]}, index=bad)
+        reasons = pd.DataFrame(
+            {
+                PRE_REJECTED: [reason for _, reason, _ in self.malformed],
+                PRE_RAW: [_line_raw(text) for _, _, text in self.malformed],
+            },
+            index=bad,
+        )
         combined = pd.concat([frame.set_axis(rows), reasons]).sort_index()
         return Chunk(combined.reset_index(drop=True), self.first_row)
 
@@ -180,14 +191,14 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
         raise InputFileError(
             f"{label}: column {', '.join(twice)} appears more than once in the header"
         )
-    malformed: deque[tuple[int, str]] = deque()
+    malformed: deque[tuple[int, str, str]] = deque()
 
     def set_aside(row: Any) -> str:
         # The reader counts records from the header's, so the first data row is 2. It skips
         # empty lines itself; a line of white space alone is as blank, not malformed.
         fields = f"{row.actual_columns} fields, the header has {row.expected_columns}"
         why = BLANK_LINE if not (row.text or "").strip() else f"malformed CSV line: {fields}"
-        malformed.append((int(row.number) - 1, why))
+        malformed.append((int(row.number) - 1, why, row.text or ""))
         return "skip"
 
     try:
@@ -221,8 +232,15 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
         raise InputFileError(f"{label}: not a readable CSV file ({_first_line(exc)})") from None
 
 
+def _line_raw(text: str) -> str:
+    """The quarantine's `raw` for a line the reader could not split into the header's fields."""
+    if len(text) <= LINE_KEPT:
+        return json.dumps({"line": text})
+    return json.dumps({"line": text[:LINE_KEPT], "line_length": len(text)})
+
+
 def _block(
-    table: Any, first: int, malformed: deque[tuple[int, str]], last: bool = False
+    table: Any, first: int, malformed: deque[tuple[int, str, str]], last: bool = False
 ) -> TextBlock:
     """The block starting at row `first`, with the malformed lines that fall inside it (and,
     for the `last` block, every one left)."""
