@@ -10,6 +10,7 @@ malformed line the row numbers counted by hand. Both stores.
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from pathlib import Path
 
 import pandas as pd
@@ -18,7 +19,8 @@ from sqlalchemy import Engine, text
 
 from aftercast.config import Config
 from aftercast.errors import InputFileError
-from aftercast.ingest import ingest_path
+from aftercast.ingest import ingest_chunks, ingest_path
+from aftercast.ingest.files import Chunk, read_chunks
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
@@ -310,3 +312,31 @@ def test_a_csv_line_of_white_space_is_blank_not_malformed(
     assert (report.accepted, report.rejected) == (2, 1)
     # Rows as counted before: the third data line is row 3 (the blank one keeps its place).
     assert _quarantine(engine).values.tolist() == [[3, "value is not a finite number: 'x'"]]
+
+
+def test_a_batch_that_cannot_be_read_leaves_no_unfinished_log_row(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    header = "series_id,observed_at,value"
+    not_utf8 = tmp_path / "bytes.csv"
+    not_utf8.write_bytes(f"{header}\ns1,2026-01-01,\n".encode() + b"\xff\n")
+    unreadable = [
+        not_utf8,
+        _write(tmp_path / "header.csv", header, []),
+        _write(tmp_path / "columns.csv", "series_id,value", ["s1,1"]),
+    ]
+    for _ in range(2):  # as a source pulls it again and again
+        for path in unreadable:
+            with pytest.raises(InputFileError):
+                ingest_chunks(engine, config, "actuals", path.name, read_chunks(path, 1_000))
+
+    def broken() -> Iterator[Chunk]:  # one chunk stored, then the body breaks off
+        yield from read_chunks(_write(tmp_path / "ok.csv", header, ["s1,2026-01-01,1"]), 1_000)
+        raise InputFileError("ok.csv: cut short")
+
+    with pytest.raises(InputFileError, match="the 1 rows before it were kept"):
+        ingest_chunks(engine, config, "actuals", "ok.csv", broken())
+    with engine.connect() as connection:
+        log = read_frame(connection, "SELECT source, accepted, finished_at FROM ingest_log")
+    assert log[["source", "accepted"]].values.tolist() == [["ok.csv", 1]]
+    assert log["finished_at"].notna().all()
