@@ -171,15 +171,22 @@ def test_stage_stores_benchmarks_that_are_matched_like_any_model(
     assert again.benchmarks == 0  # nothing new: incremental
 
 
-def test_benchmarks_do_not_depend_on_arrival_order(
-    config: Config, engine: Engine, small: Scenario, tmp_path: Path
-) -> None:
+def _loaded_and_empty(
+    engine: Engine, config: Config, small: Scenario, tmp_path: Path
+) -> tuple[Engine, Config]:
+    """`small` loaded through day 12 and cycled in `engine`; a second, empty store to compare."""
     load_through(engine, config, small, 12)
     cycle_on(engine, config, small, 12)
     other_url = f"sqlite:///{tmp_path / 'other.db'}"
     other = make_engine(other_url)
     migrate(other)
-    other_config = make_config(other_url)
+    return other, make_config(other_url)
+
+
+def test_benchmarks_do_not_depend_on_arrival_order(
+    config: Config, engine: Engine, small: Scenario, tmp_path: Path
+) -> None:
+    other, other_config = _loaded_and_empty(engine, config, small, tmp_path)
     # Forecasts first, day by day with no actuals at all (no benchmark can be made), then every
     # actual at once: the benchmarks issued after each newly known period are made again.
     forecasts_only = replace(small, actuals=small.actuals.iloc[:0])
@@ -222,3 +229,23 @@ def test_seasonal_naive_ignores_the_history_of_series_without_requests() -> None
         warnings.simplefilter("error")
         got = point_forecasts("seasonal-naive", history, _requests(2, [131], range(1, 3), 12))
     assert got.tolist() == [y[130 - 12 + 1], y[130 - 12 + 2]]
+
+
+def test_a_daily_feed_of_actuals_and_forecasts_gets_every_benchmark(
+    config: Config, engine: Engine, small: Scenario, tmp_path: Path
+) -> None:
+    """The usual feed: the history first, then each day's actuals and forecasts together and
+    a cycle. Every forecast of a series not seen before is new, whatever actuals came with it,
+    so the store ends as when everything was loaded at once (and the activity that baselines
+    and the stalled check read knows every production model)."""
+    other, other_config = _loaded_and_empty(engine, config, small, tmp_path)
+    load_through(other, other_config, replace(small, forecasts=small.forecasts.iloc[:0]), -1)
+    cycle_on(other, other_config, small, -1)  # the history alone: nothing to benchmark yet
+    for day in range(13):
+        feed_day(other, other_config, small, day)
+        cycle_on(other, other_config, small, day)
+    pd.testing.assert_frame_equal(_benchmark_rows(engine), _benchmark_rows(other))
+    with other.connect() as connection:
+        activity = read_frame(connection, "SELECT series_id, model_id FROM forecast_activity")
+    assert len(activity) == small.forecasts[["series_id", "model"]].drop_duplicates().shape[0]
+    other.dispose()

@@ -125,3 +125,23 @@ def test_python_dash_m_runs_without_traceback(workdir: Path) -> None:
     assert result.returncode != 0
     assert "Traceback" not in result.stderr
     assert "missing.csv" in result.stderr
+
+
+def test_cycle_refuses_a_clock_before_the_last_completed_cycle(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    import sqlite3
+
+    assert main(["cycle", "--now", "2026-03-10T00:00:00Z"]) == 0
+    capsys.readouterr()
+    assert main(["cycle", "--now", "2026-03-09T23:59:59+00:00"]) == 2
+    assert capsys.readouterr().err.splitlines() == [
+        "aftercast: error: --now 2026-03-09T23:59:59Z is before the clock of cycle 1 "
+        "(2026-03-10T00:00:00Z); cycles only move forward (`aftercast replay` looks back "
+        "without storing)"
+    ]
+    # The same clock again, then a later one, are cycles like any other.
+    assert main(["cycle", "--now", "2026-03-10T00:00:00Z"]) == 0
+    assert main(["cycle", "--now", "2026-03-11T00:00:00Z"]) == 0
+    with sqlite3.connect(workdir / "aftercast.db") as db:  # the refused one left no cycle row
+        assert db.execute("SELECT COUNT(*) FROM cycles").fetchone() == (3,)

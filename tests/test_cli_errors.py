@@ -106,6 +106,8 @@ CASES = {
         "taken",
         lambda d: (d / "taken").mkdir(),
     ),
+    "negative status --limit": Case(["status", "--limit", "-1"], "--limit -1: give 0 for all"),
+    "negative status --limit, JSON": Case(["status", "--json", "--limit", "-5"], "--limit -5"),
     "starter config into a file": Case(
         ["init", "--write-config", "plain/c.yaml"],
         "plain/c.yaml",

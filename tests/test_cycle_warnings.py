@@ -8,13 +8,16 @@ line, while standard output holds only the cycle's own line or JSON document.
 from __future__ import annotations
 
 import json
+import logging
 import os
+import sys
 from pathlib import Path
 
 import pytest
 import yaml
 
 from aftercast.cli import main
+from aftercast.logs import TextFormatter
 from tests.conftest import write_csv
 
 DAYS = ("2026-06-03T00:00:00Z", "2026-06-04T00:00:00Z")  # sources due again on the second
@@ -83,3 +86,17 @@ def test_cycle_json_keeps_stdout_one_document_and_warns_in_json_lines(
     }
     (unread,) = [line for line in lines if line["event"] == "batch not read"]
     assert unread["batch"] == str(tmp_path / "drop" / "broken.parquet")
+
+
+def test_a_crash_logged_with_its_source_is_one_plain_line_naming_it() -> None:
+    """`log.exception(..., extra={"source": name})`, as a pull that crashed is logged."""
+    try:
+        raise ValueError("bad header\nsecond line")
+    except ValueError:
+        record = logging.makeLogRecord(
+            {"msg": "source pull crashed", "levelno": logging.ERROR, "levelname": "ERROR"}
+        )
+        record.source = "warehouse"
+        record.exc_info = sys.exc_info()
+    line = TextFormatter().format(record)
+    assert line == "aftercast: error: source 'warehouse': ValueError: bad header second line"

@@ -9,6 +9,8 @@ malformed line the row numbers counted by hand. Both stores.
 
 from __future__ import annotations
 
+import json
+from collections.abc import Iterator
 from pathlib import Path
 
 import pandas as pd
@@ -16,7 +18,9 @@ import pytest
 from sqlalchemy import Engine, text
 
 from aftercast.config import Config
-from aftercast.ingest import ingest_path
+from aftercast.errors import InputFileError
+from aftercast.ingest import ingest_chunks, ingest_path
+from aftercast.ingest.files import Chunk, read_chunks
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
@@ -123,6 +127,22 @@ def test_malformed_csv_lines_are_rejected_in_place_and_the_rest_kept(
     stored = _actuals(engine).set_index("value")
     expected = {float(i) for i in range(ROWS)} - {1000.0, 1700.0}
     assert set(stored.index) == expected
+    # The quarantine keeps each line as written, since it has no cells to show.
+    with engine.connect() as connection:
+        raw = read_frame(connection, "SELECT raw FROM quarantine ORDER BY row_number")["raw"]
+    assert [json.loads(r) for r in raw] == [{"line": rows[1000]}, {"line": "s1"}]
+    assert report.rejected_reasons == {"malformed CSV line": 2}
+
+
+def test_a_long_malformed_line_is_kept_cut_with_its_length(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    line = "s1,2026-01-01T00:00:00Z,1," + "x" * 5_000
+    path = _write(tmp_path / "actuals.csv", "series_id,observed_at,value", [line])
+    ingest_path(engine, config, "actuals", path)
+    with engine.connect() as connection:
+        raw = json.loads(connection.execute(text("SELECT raw FROM quarantine")).scalar_one())
+    assert raw == {"line": line[:2_000], "line_length": len(line)}
 
 
 def test_ingesting_again_stores_no_second_quarantine_row_and_no_phantom_series(
@@ -248,3 +268,75 @@ def test_a_nul_character_is_rejected_where_postgresql_could_not_store_it(
     alone = tmp_path / "alone.csv"  # its only key holds a NUL: never even looked up
     alone.write_bytes(b"series_id,observed_at,value\ns\x00,2026-01-01T00:00:00Z,1\n")
     assert ingest_path(engine, config, "actuals", alone).rejected == 1
+
+
+@pytest.mark.parametrize("chunk_rows", [1_000, 200_000])
+def test_blank_json_lines_are_skipped_and_rows_keep_their_line_numbers(
+    engine: Engine, config: Config, tmp_path: Path, chunk_rows: int
+) -> None:
+    good = '{"series_id": "s", "observed_at": "2026-01-%02d", "value": %d}'
+    bad = ['{"series_id": "s", "value": 3}', '{"series_id": "s", "observed_at": "2026-01-04"}']
+    lines = [good % (1, 1), "", "   \t", good % (2, 2), bad[0]]
+    lines += [""] * 1_200  # with 1,000-row chunks, one chunk of blank lines alone
+    lines += [good % (3, 3), bad[1], ""]
+    path = tmp_path / "actuals.jsonl"
+    path.write_text("\r\n".join(lines) + "\n", encoding="utf-8")
+    chunked = make_config(str(config.store.url), ingest={"chunk_rows": chunk_rows})
+    report = ingest_path(engine, chunked, "actuals", path)
+    assert (report.accepted, report.rejected) == (3, 2)
+    # The file's own line numbers of the two bad lines, counted by the standard library.
+    text = path.read_text(encoding="utf-8").splitlines()
+    numbers = [n for n, line in enumerate(text, start=1) if line in bad]
+    assert _quarantine(engine)["row_number"].tolist() == numbers == [5, 1207]
+    assert _actuals(engine)["value"].tolist() == [1.0, 2.0, 3.0]
+
+
+def test_json_lines_of_blank_lines_alone_are_a_file_without_rows(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    path = tmp_path / "empty.jsonl"
+    path.write_text("\n  \n\n", encoding="utf-8")
+    with pytest.raises(InputFileError, match="the file has no rows, only blank lines"):
+        ingest_path(engine, config, "actuals", path)
+
+
+def test_a_csv_line_of_white_space_is_blank_not_malformed(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    path = tmp_path / "actuals.csv"
+    path.write_text(
+        "series_id,observed_at,value\ns,2026-01-01,1\n  \t \ns,2026-01-02,x\ns,2026-01-03,3\n  \n",
+        encoding="utf-8",
+    )
+    report = ingest_path(engine, config, "actuals", path)
+    assert (report.accepted, report.rejected) == (2, 1)
+    # Rows as counted before: the third data line is row 3 (the blank one keeps its place).
+    assert _quarantine(engine).values.tolist() == [[3, "value is not a finite number: 'x'"]]
+
+
+def test_a_batch_that_cannot_be_read_leaves_no_unfinished_log_row(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    header = "series_id,observed_at,value"
+    not_utf8 = tmp_path / "bytes.csv"
+    not_utf8.write_bytes(f"{header}\ns1,2026-01-01,\n".encode() + b"\xff\n")
+    unreadable = [
+        not_utf8,
+        _write(tmp_path / "header.csv", header, []),
+        _write(tmp_path / "columns.csv", "series_id,value", ["s1,1"]),
+    ]
+    for _ in range(2):  # as a source pulls it again and again
+        for path in unreadable:
+            with pytest.raises(InputFileError):
+                ingest_chunks(engine, config, "actuals", path.name, read_chunks(path, 1_000))
+
+    def broken() -> Iterator[Chunk]:  # one chunk stored, then the body breaks off
+        yield from read_chunks(_write(tmp_path / "ok.csv", header, ["s1,2026-01-01,1"]), 1_000)
+        raise InputFileError("ok.csv: cut short")
+
+    with pytest.raises(InputFileError, match="the 1 rows before it were kept"):
+        ingest_chunks(engine, config, "actuals", "ok.csv", broken())
+    with engine.connect() as connection:
+        log = read_frame(connection, "SELECT source, accepted, finished_at FROM ingest_log")
+    assert log[["source", "accepted"]].values.tolist() == [["ok.csv", 1]]
+    assert log["finished_at"].notna().all()

@@ -8,6 +8,7 @@ changes nothing. Expected values are the input rows themselves, counted by hand.
 
 from __future__ import annotations
 
+import json
 from pathlib import Path
 
 import pandas as pd
@@ -117,4 +118,37 @@ def test_ingesting_a_series_file_again_changes_nothing(
     pd.testing.assert_frame_equal(_series(engine), before)  # updated_at included
     edited = write_csv(tmp_path / "s2.csv", HEADER, "a,D,7,trays,bakers", *rows[1:])
     third = ingest_path(engine, config, "series", edited)
-    assert (third.accepted, third.revised, third.unchanged) == (0, 3, 0)  # region dropped too
+    assert (third.accepted, third.revised, third.unchanged) == (0, 1, 2)  # only a's unit moved
+    assert _labels(engine)["b"] == {"region": "north"}  # no label_region column: region stays
+
+
+def _labels(engine: Engine) -> dict[str, dict[str, str]]:
+    return {key: json.loads(text) for key, text in _series(engine)["labels"].items()}
+
+
+def test_a_series_file_sets_only_its_label_columns_and_an_empty_cell_removes_one(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    first = write_csv(
+        tmp_path / "1.csv", "series_id,label_team,label_region", "a,bakers,north", "b,ovens,south"
+    )
+    ingest_path(engine, config, "series", first)
+    units = write_csv(tmp_path / "2.csv", "series_id,unit", "a,loaves", "b,trays")
+    report = ingest_path(engine, config, "series", units)
+    assert (report.revised, report.unchanged) == (2, 0)
+    assert _labels(engine) == {
+        "a": {"region": "north", "team": "bakers"},
+        "b": {"region": "south", "team": "ovens"},
+    }
+    edits = write_csv(
+        tmp_path / "3.csv", "series_id,label_team,label_shelf", "a,,top", "b,counter, ", "c,,"
+    )
+    report = ingest_path(engine, config, "series", edits)
+    assert (report.accepted, report.revised, report.unchanged) == (1, 2, 0)
+    assert _labels(engine) == {
+        "a": {"region": "north", "shelf": "top"},  # team removed, shelf added
+        "b": {"region": "south", "team": "counter"},  # a blank cell removes too
+        "c": {},
+    }
+    again = ingest_path(engine, config, "series", edits)
+    assert (again.accepted, again.revised, again.unchanged) == (0, 0, 3)

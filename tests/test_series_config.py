@@ -136,3 +136,16 @@ def test_init_applies_the_entries_and_warns_in_one_line_each(
     assert len(warnings) == 1 and warnings[0].startswith("aftercast: warning: series[1].frequency")
     assert stored(engine)["labels"] == {"pager": "night-desk"}  # applied by init, no cycle
     assert stored(engine)["frequency"] == "D"  # the stored period stays while data exists
+
+
+def test_an_entry_label_a_series_file_removes_comes_back_at_the_next_sync(
+    engine: Engine, store_url: str, tmp_path: Path
+) -> None:
+    config = entry_config(store_url, {"id": KEY, "labels": {"team": "planning"}})
+    create(engine, config, KEY)
+    path = tmp_path / "series.csv"
+    path.write_text(f"series_id,label_team,label_shelf\n{KEY},,a\n")
+    assert ingest_path(engine, config, "series", path).revised == 1
+    assert stored(engine)["labels"] == {"shelf": "a"}  # the file removed team
+    assert sync_series_entries(engine, config) == []
+    assert stored(engine)["labels"] == {"team": "planning", "shelf": "a"}  # the entry on top

@@ -102,6 +102,9 @@ def test_folder_moves_done_and_unreadable_files_and_keeps_going(
     assert sorted(p.name for p in (drop / "failed").iterdir()) == ["bad.csv"]
     assert not list(drop.glob("*.csv"))
     assert _scalar(engine, "SELECT COUNT(*) FROM actuals") == 1
+    # The log holds the file that was read, finished; the unreadable one left no row behind.
+    assert _scalar(engine, "SELECT COUNT(*) FROM ingest_log WHERE finished_at IS NOT NULL") == 1
+    assert _scalar(engine, "SELECT COUNT(*) FROM ingest_log") == 1
 
 
 def _aged_drop(folder: Path, *names: str) -> Path:

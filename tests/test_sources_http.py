@@ -218,3 +218,25 @@ def test_a_body_over_max_bytes_is_refused(store: Engine) -> None:
         config = make_config(str(store.url), sources=[_source(server.url, max_bytes=100)])
         (result,) = pull_all(store, config)
     assert not result.ok and "max_bytes" in str(result.error)
+
+
+def test_json_lines_body_reads_like_a_file_line_by_line(store: Engine) -> None:
+    """A bad line is that row's rejection at its line number, not the pull's failure; blank
+    lines are skipped, as in a JSON Lines file."""
+    lines = [
+        '{"series_id": "s1", "observed_at": "2026-01-01", "value": 1}',
+        "",
+        "{oops",
+        "   ",
+        '{"series_id": "s1", "observed_at": "2026-01-02", "value": 2}',
+        "",
+    ]
+    answer = Answer(body="\r\n".join(lines).encode())
+    with GetServer(default=answer) as server:
+        config = make_config(str(store.url), sources=[_source(server.url, format="jsonl")])
+        (result,) = pull_all(store, config)
+    assert result.ok, result.error
+    assert (result.accepted, result.rejected) == (2, 1)
+    with store.connect() as connection:
+        rows = connection.execute(text("SELECT row_number, reason FROM quarantine")).all()
+    assert [tuple(r) for r in rows] == [(3, "not a JSON object: {oops")]

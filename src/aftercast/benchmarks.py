@@ -84,7 +84,9 @@ def _production_forecasts(connection: Connection, series_ids: np.ndarray) -> pd.
     since = since.merge(marks, on="series_id", how="left").merge(
         changed, on="series_id", how="left"
     )
-    since["since"] = since[["seen", "changed"]].min(axis=1).fillna(_NO_WATERMARK)
+    # A series never seen has only new forecasts, all of them wanted, whatever actuals came
+    # with them: its watermark is the lowest there is, not the changed period's.
+    since["since"] = np.fmin(since["seen"].fillna(_NO_WATERMARK), since["changed"])
     since = since[["series_id", "since"]]
     staged = stage_keys(connection, "bm_since", since.astype("int64"))
     return read_frame(

@@ -91,7 +91,9 @@ class TextFormatter(logging.Formatter):
     """
 
     def format(self, record: logging.LogRecord) -> str:
-        fields = getattr(record, _FIELDS, None) or {}
+        # Fields of `log_event`, or a plain `extra={"source": ...}` of `log.exception`.
+        plain = {k: getattr(record, k) for k in ("source", "key") if hasattr(record, k)}
+        fields = {**plain, **(getattr(record, _FIELDS, None) or {})}
         about = [str(fields["key"])] if fields.get("key") else []
         if fields.get("source"):
             about.append(f"source {fields['source']!r}")

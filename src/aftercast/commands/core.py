@@ -15,7 +15,7 @@ from typing import Any, TextIO
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Engine
+from sqlalchemy import Engine, text
 
 from aftercast.cli import EXIT_UNREADABLE, print_json
 from aftercast.config import Config, load_config
@@ -23,7 +23,7 @@ from aftercast.cycle import run_cycle
 from aftercast.errors import AftercastError, InputFileError
 from aftercast.ingest import IngestReport, ingest_path
 from aftercast.logs import warnings_to_stderr
-from aftercast.periods import iso_texts, parse_instant
+from aftercast.periods import iso_texts, parse_instant, to_iso
 from aftercast.store.catalog import sync_series_entries
 from aftercast.store.db import check_current, make_engine, migrate, schema_revisions
 from aftercast.store.queries import iter_pair_export
@@ -128,10 +128,35 @@ def _totals(rows: list[dict[str, object]]) -> dict[str, object]:
     return totals
 
 
+def _check_clock_forward(engine: Engine, now: int) -> None:
+    """Refuse a `--now` before the clock of the last completed cycle.
+
+    Alert lifecycles (raise after N cycles, snoozes, since when), source schedules and the
+    stored windows all take each cycle to be later than the one before; stepping back would
+    leave an alert history out of order. Looking back is what `replay` is for.
+    """
+    with engine.connect() as connection:
+        last = connection.execute(
+            text(
+                "SELECT id, now FROM cycles WHERE finished_at IS NOT NULL "
+                "ORDER BY now DESC, id DESC LIMIT 1"
+            )
+        ).first()
+    if last is not None and now < last.now:
+        raise AftercastError(
+            f"--now {to_iso(now)} is before the clock of cycle {last.id} ({to_iso(last.now)}); "
+            "cycles only move forward (`aftercast replay` looks back without storing)"
+        )
+
+
 def cmd_cycle(args: argparse.Namespace) -> int:
     config = load_config(args.config)
+    engine = open_store(config)
+    now = _now(args.now)
+    if now is not None:  # the machine's own clock is trusted, even if a test once ran ahead
+        _check_clock_forward(engine, now)
     with warnings_to_stderr(args.json):
-        report = run_cycle(open_store(config), config, _now(args.now))
+        report = run_cycle(engine, config, now)
     if args.json:
         print_json(report.as_json())
     else:

@@ -75,6 +75,8 @@ def _horizon(value: str | None, buckets: tuple[str, ...] | None) -> str | None:
 def cmd_status(args: argparse.Namespace) -> int:
     config = load_config(args.config)
     engine = open_store(config)
+    if args.limit is not None and args.limit < 0:  # SQLite would read LIMIT -1 as no limit
+        raise AftercastError(f"--limit {args.limit}: give 0 for all rows, or a positive count")
     table = not (args.json or args.csv)
     limit = args.limit if args.limit is not None else (TABLE_LIMIT if table else None)
     buckets = tuple(config.horizon_buckets) if args.buckets else None

@@ -24,6 +24,7 @@ from aftercast.ingest.conflicts import find_conflicts, mark_conflicts
 from aftercast.ingest.files import (
     Chunk,
     content_hash,
+    file_format,
     file_parts,
     read_chunks,
     set_aside_invalid_text,
@@ -217,11 +218,13 @@ def ingest_chunks(
         raise InputFileError(f"unknown kind {kind!r}: use forecasts, actuals or series")
     report = IngestReport(kind=kind, source=source)
     now = int(time.time())
-    batch_id = _start_log(engine, kind, source, digest, now)
-    seen_any = False
+    # The batch is logged once its first chunk is read and has the columns it needs: a source
+    # that cannot be read leaves no log row (its caller reports the error), rather than one
+    # that never finishes at every pull.
+    batch_id: int | None = None
     try:
         for chunk in chunks:
-            if not seen_any:
+            if batch_id is None:
                 require_columns(chunk.frame, REQUIRED[kind], source)
                 if kind == "series":
                     series_rows.check_label_columns(chunk.frame.columns, source)
@@ -230,17 +233,17 @@ def ingest_chunks(
                     for c in extra_columns(chunk.frame, KNOWN_COLUMNS[kind])
                     if not (kind == "series" and str(c).startswith("label_"))  # labels are read
                 ]
-                seen_any = True
+                batch_id = _start_log(engine, kind, source, digest, now)
             with write(engine) as connection:
                 _write_chunk(connection, config, kind, chunk, report, batch_id, now)
     except InputFileError as exc:
-        if not seen_any:
+        if batch_id is None:
             raise
         # The file broke off after some chunks were stored: they stay, and the log says so.
         _finish_log(engine, batch_id, report)
         kept = report.accepted + report.revised + report.unchanged
         raise InputFileError(f"{exc} (the {kept} rows before it were kept)") from None
-    if not seen_any:
+    if batch_id is None:
         raise InputFileError(f"{source}: the file has a header but no rows")
     _finish_log(engine, batch_id, report)
     return report
@@ -256,8 +259,9 @@ def ingest_path(engine: Engine, config: Config, kind: str, path: Path) -> Ingest
     rows = config.ingest.chunk_rows
     chunks = read_chunks(path, rows)
     first = next(chunks, None)
-    if first is None:
-        raise InputFileError(f"{path}: the file has a header but no rows")
+    if first is None:  # a CSV header alone, or JSON Lines of blank lines
+        what = "a header but no rows" if file_format(path) == "csv" else "no rows, only blank lines"
+        raise InputFileError(f"{path}: the file has {what}")
     require_columns(first.frame, REQUIRED[kind], str(path))
     second = next(chunks, None)
     head = [first] if second is None else [first, second]

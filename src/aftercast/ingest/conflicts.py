@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from aftercast.ingest.files import PRE_REJECTED, Chunk, TextBlock
+from aftercast.ingest.files import MARKERS, PRE_REJECTED, Chunk, TextBlock
 
 KEYS = {
     "forecasts": ["series_id", "model", "issued_at", "target_at"],
@@ -81,7 +81,7 @@ def _chunk_hashes(chunk: Chunk, key_columns: list[str]) -> pd.DataFrame | None:
     frame = frame[usable]
     if frame.empty or any(c not in frame for c in key_columns):
         return None
-    values = [c for c in frame.columns if c not in key_columns and c != PRE_REJECTED]
+    values = [c for c in frame.columns if c not in key_columns and c not in MARKERS]
     return pd.DataFrame(
         {
             "key": _fold(frame, key_columns, _text_hash),

@@ -15,7 +15,7 @@ import hashlib
 import io
 import json
 from collections import deque
-from collections.abc import Iterator
+from collections.abc import Iterable, Iterator
 from dataclasses import dataclass
 from itertools import islice
 from pathlib import Path
@@ -39,6 +39,14 @@ FORMATS = {
 # a key that disagrees with another chunk's): this column holds why, and validation rejects the
 # row with that reason.
 PRE_REJECTED = "__rejected__"
+# What such a row held, as the quarantine's `raw` JSON, when the reader had no cells to give:
+# a malformed CSV line is kept as {"line": its text} (cut to LINE_KEPT characters).
+PRE_RAW = "__raw__"
+MARKERS = (PRE_REJECTED, PRE_RAW)
+LINE_KEPT = 2_000
+# A blank line of JSON Lines holds no row: it keeps its place, so that later rows keep their
+# line numbers, with this in PRE_REJECTED, and validation drops it without counting it.
+BLANK_LINE = "__blank__"
 
 
 @dataclass(frozen=True)
@@ -141,12 +149,12 @@ class TextBlock:
 
     table: Any
     first_row: int
-    malformed: list[tuple[int, str]]
+    malformed: list[tuple[int, str, str]]  # number, reason, the line's text
 
     def _positions(self) -> tuple[np.ndarray, np.ndarray]:
         """Places of the table's rows and of the malformed lines within the chunk."""
         total = self.table.num_rows + len(self.malformed)
-        wanted = np.array([number - self.first_row for number, _ in self.malformed], dtype=int)
+        wanted = np.array([line[0] - self.first_row for line in self.malformed], dtype=int)
         # Kept in order and inside the chunk whatever numbers the reader gave.
         bad = np.maximum.accumulate(np.maximum(wanted, 0) - np.arange(len(wanted)))
         bad = np.minimum(bad, self.table.num_rows) + np.arange(len(wanted))
@@ -161,7 +169,13 @@ class TextBlock:
         if not self.malformed:
             return Chunk(frame, self.first_row)
         rows, bad = self._positions()
-        reasons = pd.DataFrame({PRE_REJECTED: [reason for _, reason in self.malformed]}, index=bad)
+        reasons = pd.DataFrame(
+            {
+                PRE_REJECTED: [reason for _, reason, _ in self.malformed],
+                PRE_RAW: [_line_raw(text) for _, _, text in self.malformed],
+            },
+            index=bad,
+        )
         combined = pd.concat([frame.set_axis(rows), reasons]).sort_index()
         return Chunk(combined.reset_index(drop=True), self.first_row)
 
@@ -177,12 +191,14 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
         raise InputFileError(
             f"{label}: column {', '.join(twice)} appears more than once in the header"
         )
-    malformed: deque[tuple[int, str]] = deque()
+    malformed: deque[tuple[int, str, str]] = deque()
 
     def set_aside(row: Any) -> str:
-        # The reader counts records from the header's, so the first data row is 2.
+        # The reader counts records from the header's, so the first data row is 2. It skips
+        # empty lines itself; a line of white space alone is as blank, not malformed.
         fields = f"{row.actual_columns} fields, the header has {row.expected_columns}"
-        malformed.append((int(row.number) - 1, f"malformed CSV line: {fields}"))
+        why = BLANK_LINE if not (row.text or "").strip() else f"malformed CSV line: {fields}"
+        malformed.append((int(row.number) - 1, why, row.text or ""))
         return "skip"
 
     try:
@@ -216,8 +232,15 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
         raise InputFileError(f"{label}: not a readable CSV file ({_first_line(exc)})") from None
 
 
+def _line_raw(text: str) -> str:
+    """The quarantine's `raw` for a line the reader could not split into the header's fields."""
+    if len(text) <= LINE_KEPT:
+        return json.dumps({"line": text})
+    return json.dumps({"line": text[:LINE_KEPT], "line_length": len(text)})
+
+
 def _block(
-    table: Any, first: int, malformed: deque[tuple[int, str]], last: bool = False
+    table: Any, first: int, malformed: deque[tuple[int, str, str]], last: bool = False
 ) -> TextBlock:
     """The block starting at row `first`, with the malformed lines that fall inside it (and,
     for the `last` block, every one left)."""
@@ -273,17 +296,41 @@ def _parquet_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
 
 
 def _jsonl_chunks(path: Path, chunk_rows: int) -> Iterator[Chunk]:
-    first = 1
     with path.open("r", encoding="utf-8") as handle:
-        while True:
-            lines = list(islice(handle, chunk_rows))
-            if not lines:
-                return
-            yield Chunk(set_aside_invalid_text(_parse_jsonl(path, lines, first)), first)
-            first += len(lines)
+        yield from jsonl_chunks(handle, chunk_rows)
 
 
-def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
+def jsonl_chunks(lines: Iterable[str], chunk_rows: int) -> Iterator[Chunk]:
+    """Chunks of `chunk_rows` lines of JSON Lines (a file, or a pulled body), a row's number
+    being its line number. A line that is not a JSON object is a row holding its reason; blank
+    lines are `BLANK_LINE` rows, dropped by validation; a chunk of blank lines alone is none."""
+    source = iter(lines)
+    first = 1
+    while True:
+        block = list(islice(source, chunk_rows))
+        if not block:
+            return
+        frame = _parse_jsonl_lines(block)
+        if frame is not None:  # a chunk of blank lines alone has no rows, nor columns
+            yield Chunk(set_aside_invalid_text(frame), first)
+        first += len(block)
+
+
+def _parse_jsonl_lines(lines: list[str]) -> pd.DataFrame | None:
+    """The rows of a block of lines, a blank line (empty or only white space) as a `BLANK_LINE`
+    row in its place; None when every line is blank."""
+    blank = [i for i, line in enumerate(lines) if not line.strip()]
+    if not blank:
+        return _parse_jsonl(lines)
+    if len(blank) == len(lines):
+        return None
+    filled = np.setdiff1d(np.arange(len(lines)), blank)
+    frame = _parse_jsonl([lines[i] for i in filled]).set_axis(filled)
+    marks = pd.DataFrame({PRE_REJECTED: BLANK_LINE}, index=blank)
+    return pd.concat([frame, marks]).sort_index().reset_index(drop=True)
+
+
+def _parse_jsonl(lines: list[str]) -> pd.DataFrame:
     """Parse a block of JSON lines in C; only a block that fails is re-read line by line."""
     try:
         frame = pd.read_json(
@@ -294,16 +341,15 @@ def _parse_jsonl(path: Path, lines: list[str], first: int) -> pd.DataFrame:
     except ValueError:
         pass
     records: list[dict[str, object]] = []
-    for offset, line in enumerate(lines):
+    for line in lines:
         try:
-            value = json.loads(line) if line.strip() else {}
+            value = json.loads(line)
         except json.JSONDecodeError:
             value = None
         if not isinstance(value, dict):
             # Keep the row so it is quarantined with its number instead of vanishing.
             value = {PRE_REJECTED: f"not a JSON object: {line.rstrip()[:200]}"}
         records.append(value)
-        del offset
     return pd.DataFrame.from_records(records)
 
 

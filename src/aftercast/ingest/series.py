@@ -5,6 +5,9 @@ zone fix how periods are counted and season the scale of every scaled error, so 
 change once a series has forecasts or actuals (its stored periods would silently shift, its
 window mix two scales); such a row is rejected with that reason, as the config's `series:`
 entries are refused (`store.catalog.sync_series_entries`).
+
+A file sets only the labels it has columns for: a series' other stored labels stay, and an
+empty cell in a `label_<name>` column removes that label from the row's series.
 """
 
 from __future__ import annotations
@@ -59,7 +62,8 @@ def _season(frame: pd.DataFrame, reasons: Reasons) -> pd.Series:
 
 
 def _labels(frame: pd.DataFrame) -> pd.Series | str:
-    """Each row's labels as JSON text (names sorted), from its non-empty `label_` cells."""
+    """Each row's label edits as JSON text (names sorted): a `label_` cell's value, or null
+    for an empty one (the label is removed); labels without a column are not mentioned."""
     labels = [c for c in frame.columns if str(c).startswith("label_")]
     if not labels:
         return "{}"
@@ -67,11 +71,29 @@ def _labels(frame: pd.DataFrame) -> pd.Series | str:
     label_frame.columns = [str(c).removeprefix("label_") for c in labels]
     return pd.Series(
         [
-            json.dumps({k: v for k, v in row.items() if not pd.isna(v) and v != ""}, sort_keys=True)
+            json.dumps({k: None if _empty(v) else v for k, v in row.items()}, sort_keys=True)
             for row in label_frame.to_dict("records")
         ],
         index=frame.index,
     )
+
+
+def _empty(value: object) -> bool:
+    return bool(pd.isna(value)) or not str(value).strip()
+
+
+def _edit_labels(edits: pd.Series, stored: pd.Series) -> list[str]:
+    """Stored labels (JSON text, NA for a new series) with each row's edits applied."""
+    out = []
+    for edit, old in zip(edits.to_numpy(), stored.to_numpy(), strict=True):
+        labels = {} if pd.isna(old) else json.loads(old)
+        for name, value in json.loads(edit).items():
+            if value is None:
+                labels.pop(name, None)
+            else:
+                labels[name] = value
+        out.append(json.dumps(labels, sort_keys=True))
+    return out
 
 
 def check(frame: pd.DataFrame, first_row: int) -> Checked:
@@ -115,7 +137,7 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
         fallback = pd.Series(getattr(defaults, column, None), index=rows.index, dtype=object)
         fallback.loc[known] = stored.loc[known, column]
         merged[column] = rows[column].astype(object).where(rows[column].notna(), fallback)
-    merged["labels"] = rows["labels"]
+    merged["labels"] = _edit_labels(rows["labels"], stored["labels"].reindex(rows.index))
     _refuse_period_changes(connection, checked, merged.loc[known], stored.loc[known])
     merged = merged.drop(index=merged.index.intersection(checked.rejected_keys))
     new = merged.loc[merged.index.difference(stored.index)].reset_index(names="key")

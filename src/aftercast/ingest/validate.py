@@ -24,7 +24,7 @@ from aftercast.ingest.cells import (
     number_values,
     time_values,
 )
-from aftercast.ingest.files import PRE_REJECTED
+from aftercast.ingest.files import BLANK_LINE, MARKERS, PRE_RAW
 from aftercast.periods import periods_by_series
 
 FORECAST_REQUIRED = ["series_id", "model", "issued_at", "target_at", "point"]
@@ -57,7 +57,7 @@ def require_columns(frame: pd.DataFrame, required: list[str], source: str) -> No
     missing = [c for c in required if c not in frame.columns]
     if not missing:
         return
-    found = [str(c) for c in frame.columns if c != PRE_REJECTED]
+    found = [str(c) for c in frame.columns if c not in MARKERS]
     shown = [c if c and c == c.strip() else repr(c) for c in found[:FOUND_LISTED]]
     if len(found) > FOUND_LISTED:
         shown.append(f"and {len(found) - FOUND_LISTED} more")
@@ -69,7 +69,7 @@ def require_columns(frame: pd.DataFrame, required: list[str], source: str) -> No
 
 def extra_columns(frame: pd.DataFrame, known: list[str]) -> list[str]:
     """Columns the kind does not read (said once per file); the reader's own marker is not one."""
-    known = [*known, PRE_REJECTED]
+    known = [*known, *MARKERS]
     return [c for c in frame.columns if c not in known and not _BOUND.match(str(c))]
 
 
@@ -90,9 +90,13 @@ def _rejections(frame: pd.DataFrame, reasons: Reasons, first_row: int) -> pd.Dat
             "reason": reasons.reason[bad].astype(str).to_numpy(),
         }
     )
-    # The marker holds the reason, which is stored beside the raw values already.
-    raw = frame.loc[bad].drop(columns=PRE_REJECTED, errors="ignore")
+    # The markers hold the reason, stored beside the raw values already, and for a row the
+    # reader could not split (a malformed line) what it held instead of its cells.
+    raw = frame.loc[bad].drop(columns=list(MARKERS), errors="ignore")
     rejected["raw"] = _raw_json(raw).to_numpy() if bad.any() else []
+    if PRE_RAW in frame.columns and bad.any():
+        held = frame.loc[bad, PRE_RAW].to_numpy()
+        rejected["raw"] = np.where(pd.notna(held), held, rejected["raw"].to_numpy())
     return rejected
 
 
@@ -307,8 +311,8 @@ def _package(
     quantiles: pd.DataFrame | None = None,
 ) -> Checked:
     """Split into kept rows and rejections; exact repeats are neither (counted as unchanged)."""
-    is_repeat = (reasons.reason == "__repeat__").fillna(False).astype(bool)
-    reasons.reason[is_repeat] = pd.NA
+    is_repeat = reasons.reason.isin(["__repeat__", BLANK_LINE]).fillna(False).astype(bool)
+    reasons.reason[is_repeat] = pd.NA  # a blank line is neither a rejection nor a repeat
     kept = good.loc[~reasons.bad & ~is_repeat]
     checked = Checked(kept, _rejections(frame, reasons, first_row), repeats)
     if intervals is not None:

@@ -23,7 +23,7 @@ import pandas as pd
 import requests
 
 from aftercast.errors import InputFileError
-from aftercast.ingest.files import PRE_REJECTED, Chunk, set_aside_invalid_text
+from aftercast.ingest.files import PRE_REJECTED, Chunk, jsonl_chunks, set_aside_invalid_text
 from aftercast.ingest.files import csv_chunks as read_csv_chunks
 from aftercast.settings.sources import HttpSettings
 from aftercast.sources.base import Batch, Source, SourceError, SourceState
@@ -135,10 +135,9 @@ class HttpSource(Source):
             return csv_chunks(body, self.chunk_rows, self.settings.url)
         try:
             text = body.decode("utf-8")
-            if self.settings.format == "jsonl":
-                items = [json.loads(line) for line in text.splitlines() if line.strip()]
-            else:
-                items = _records_at(json.loads(text), self.settings.records_key) if text else []
+            if self.settings.format == "jsonl":  # read as a file is: each line its own row
+                return jsonl_chunks(io.StringIO(text), self.chunk_rows)
+            items = _records_at(json.loads(text), self.settings.records_key) if text else []
         except (UnicodeDecodeError, json.JSONDecodeError) as exc:
             raise SourceError(
                 f"GET {self.settings.url}: not {self.settings.format}: {exc}"
