@@ -84,7 +84,9 @@ def _production_forecasts(connection: Connection, series_ids: np.ndarray) -> pd.
     since = since.merge(marks, on="series_id", how="left").merge(
         changed, on="series_id", how="left"
     )
-    since["since"] = since[["seen", "changed"]].min(axis=1).fillna(_NO_WATERMARK)
+    # A series never seen before has only new forecasts: every one of them, whatever arrived.
+    since["since"] = since[["seen", "changed"]].min(axis=1).where(since["seen"].notna())
+    since["since"] = since["since"].fillna(_NO_WATERMARK)
     since = since[["series_id", "since"]]
     staged = stage_keys(connection, "bm_since", since.astype("int64"))
     return read_frame(
