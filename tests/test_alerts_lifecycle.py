@@ -19,6 +19,7 @@ import pytest
 from sqlalchemy import Engine
 
 from aftercast.alerts.stage import apply_findings
+from aftercast.alerts.store import set_attention
 from aftercast.cli import main
 from aftercast.config import Config
 from aftercast.notify.deliver import deliver_due
@@ -233,3 +234,22 @@ def test_a_reminder_due_within_a_minute_of_the_cycle_goes_now(
     run(engine, config, [True], start=NOW + 2 * hour - 30)
     assert outbox(engine)["kind"].tolist() == ["digest", "reminder", "reminder"]
     assert len(smtp.messages) == 3
+
+
+def test_a_snooze_ending_within_a_minute_of_the_cycle_ends_with_it(
+    store_url: str, smtp: SmtpRecorder
+) -> None:
+    config = mail_config(store_url, smtp.port, raise_after=2)
+    engine = store(config)
+    hour = 3600
+    run(engine, config, [True], start=NOW)  # pending
+    alert_id = int(alerts(engine)["id"].iloc[0])
+    assert set_attention(engine, [alert_id], "snooze", "alice", NOW, until=NOW + 3 * hour) == 1
+    run(engine, config, [True], start=NOW + hour)  # raised while snoozed: held back
+    # Two minutes before the snooze ends is too early: the raise still waits.
+    run(engine, config, [True], start=NOW + 3 * hour - 120)
+    assert alerts(engine)["state"].tolist() == ["raised"] and smtp.messages == []
+    # The next cycle fires 30 s before the snooze ends (scheduler jitter): the raise goes now.
+    run(engine, config, [True], start=NOW + 3 * hour - 30)
+    assert [m.message["Subject"].split()[1] for m in smtp.messages] == ["CRITICAL"]
+    assert outbox(engine)["kind"].tolist() == ["digest"]

@@ -25,7 +25,7 @@ from aftercast.scenario import Scenario, ScenarioSpec, generate
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
 from tests.conftest import make_config
-from tests.test_detect_run_feed import cycle_on, feed_day, load_through
+from tests.test_detect_run_feed import cycle_on, day_start, feed_day, load_through
 
 
 def _nile() -> pd.DataFrame:
@@ -199,6 +199,23 @@ def test_benchmarks_do_not_depend_on_arrival_order(
     cycle_on(other, other_config, small, 12)
     pd.testing.assert_frame_equal(_benchmark_rows(engine), _benchmark_rows(other))
     other.dispose()
+
+
+def test_forecasts_arriving_with_the_days_actuals_get_benchmarks(
+    config: Config, engine: Engine, small: Scenario
+) -> None:
+    # A daily feed: actuals cycled for a while with no forecasts yet, then a day brings its
+    # actual and the first forecasts together. Those forecasts are new: all get benchmarks.
+    actuals_only = replace(small, forecasts=small.forecasts.iloc[:0])
+    load_through(engine, config, actuals_only, 2)
+    cycle_on(engine, config, small, 2)
+    feed_day(engine, config, small, 3)
+    issued = small.forecasts["issued_at"]
+    fresh = small.forecasts.loc[(issued >= day_start(small, 3)) & (issued < day_start(small, 4))]
+    requests = len(fresh.drop_duplicates(["series_id", "issued_at", "target_at"]))
+    assert requests == 6 * 5  # series x horizons, issued that day
+    assert cycle_on(engine, config, small, 3).benchmarks == requests * 2  # x methods
+    assert set(_benchmark_rows(engine)["name"]) == {"benchmark:naive", "benchmark:seasonal-naive"}
 
 
 def test_past_errors_are_the_lagged_differences_of_each_series_with_gaps() -> None:

@@ -11,12 +11,13 @@ is one alert however many cycles see it. Its states:
 
 A cleared fingerprint that trips again starts a new episode on the same alert. Messages go out
 when an alert is raised (one), while it stays raised and unacknowledged (a reminder every
-`remind_every_hours`, due up to `REMINDER_SLACK_SECONDS` early so that scheduler jitter does
-not push it a whole cycle late), and when it clears (one, and only if its raise was told to
-anyone). While snoozed an alert is tracked as usual but raises and reminders wait; when the
-snooze ends and the alert is still raised, the message that was held back goes out at the next
-cycle. Everything here is pure and vectorised over all alerts: frames in, frames out; the store
-module reads and writes them.
+`remind_every_hours`), and when it clears (one, and only if its raise was told to anyone).
+While snoozed an alert is tracked as usual but raises and reminders wait; when the snooze ends
+and the alert is still raised, the message that was held back goes out at the next cycle. A
+reminder that falls due, or a snooze that ends, up to `CYCLE_SLACK_SECONDS` after a cycle's
+clock counts as due at that cycle, so that a scheduler firing a little early does not push it
+a whole cycle late. Everything here is pure and vectorised over all alerts: frames in, frames
+out; the store module reads and writes them.
 """
 
 from __future__ import annotations
@@ -28,7 +29,7 @@ import pandas as pd
 
 PENDING, RAISED, ACKNOWLEDGED, CLEARED = "pending", "raised", "acknowledged", "cleared"
 OPEN_STATES = (PENDING, RAISED, ACKNOWLEDGED)
-REMINDER_SLACK_SECONDS = 60  # a reminder due this close after the cycle's clock counts as due
+CYCLE_SLACK_SECONDS = 60  # a reminder or snooze end this close after a cycle's clock is due
 STATES = (PENDING, RAISED, ACKNOWLEDGED, CLEARED)
 
 ALERT_COLUMNS = [
@@ -182,13 +183,13 @@ def _notices(
 ) -> np.ndarray:
     """Which message each alert needs this cycle: "raised", "reminder", "cleared" or ""."""
     state = frame["state"].to_numpy(dtype=object)
-    snoozed = (frame["snoozed_until"].astype(float) > now).to_numpy()
+    # A scheduler fires a little early or late; a snooze ending or a reminder falling due within
+    # the slack after this cycle's clock goes with this cycle rather than a whole cycle late.
+    snoozed = (frame["snoozed_until"].astype(float) > now + CYCLE_SLACK_SECONDS).to_numpy()
     notified = frame["notified_at"].astype(float).to_numpy()
     told = ~np.isnan(notified)
     remind = settings["remind_seconds"].to_numpy()
-    # A scheduler fires a little early or late; a reminder due within the slack of this cycle's
-    # clock goes now rather than a whole cycle late (never sooner than half its interval).
-    slack = np.minimum(REMINDER_SLACK_SECONDS, remind / 2)
+    slack = np.minimum(CYCLE_SLACK_SECONDS, remind / 2)  # never sooner than half its interval
     with np.errstate(invalid="ignore"):
         reminder_due = told & (remind > 0) & (now - notified >= remind - slack)
     up = (state == RAISED) & ~snoozed

@@ -94,6 +94,22 @@ def _integral(frame: pd.DataFrame) -> pd.DataFrame:
     return frame
 
 
+def _is_probability(name: str) -> bool:
+    return name in ("p_value", "p_adjusted") or name.endswith(("_p", "_p_value"))
+
+
+def _significant_json(frame: pd.DataFrame) -> list[str]:
+    """`"name":value` text per row, 10 significant digits, null where not finite.
+
+    pandas' JSON writer keeps 10 decimal places, so a p-value of 2.3e-12 came out as 0.0.
+    """
+    parts = []
+    for name in frame.columns:
+        values = frame[name].astype(float).to_numpy()
+        parts.append([f'"{name}":{v:.10g}' if np.isfinite(v) else f'"{name}":null' for v in values])
+    return [",".join(row) for row in zip(*parts, strict=True)]
+
+
 def evidence_json(config: Config, now: int, kept: pd.DataFrame) -> pd.Series:
     """JSON text of each kept finding's evidence, built one detection at a time."""
     out = pd.Series("{}", index=kept.index, dtype=object)
@@ -102,14 +118,19 @@ def evidence_json(config: Config, now: int, kept: pd.DataFrame) -> pd.Series:
         columns = [c for c in part.columns if c.startswith("ev_") and part[c].notna().any()]
         frame = part[columns].rename(columns=lambda c: c.removeprefix("ev_"))
         frame = _integral(_iso_columns(frame))
-        frame.insert(0, "statistic", part["statistic"])
-        frame.insert(1, "p_value", part["p_value"])
-        frame.insert(2, "p_adjusted", part["p_adjusted"])
-        lines = frame.to_json(orient="records", lines=True).splitlines()
-        # Splice the window object in as a key: the records are JSON objects from to_json.
+        exact = [c for c in frame.columns if _is_probability(c)]
+        heads = _significant_json(part[["statistic", "p_value", "p_adjusted"]].join(frame[exact]))
+        rest = frame.drop(columns=exact)
+        lines = (
+            rest.to_json(orient="records", lines=True).splitlines()
+            if len(rest.columns)
+            else ["{}"] * len(rest)
+        )
+        # Splice the numbers in first and the window object last: the records are JSON
+        # objects from to_json.
         out.loc[part.index] = [
-            line[:-1] + ',"window":' + win + "}"
-            for line, win in zip(lines, window.loc[part.index], strict=True)
+            "{" + ",".join(filter(None, (head, line[1:-1]))) + ',"window":' + win + "}"
+            for head, line, win in zip(heads, lines, window.loc[part.index], strict=True)
         ]
     return out
 
@@ -200,7 +221,7 @@ def active_findings(connection: Connection, include_cleared: bool = False) -> pd
 
 
 def finding_records(rows: pd.DataFrame) -> list[dict[str, Any]]:
-    """`alerts --json` rows: series_id, model, horizon, rule, state, active, severity, ..."""
+    """`alerts findings --json` rows: series_id, model, horizon, rule, state, active, ..."""
     records: list[dict[str, Any]] = []
     if rows.empty:
         return records

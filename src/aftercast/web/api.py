@@ -1,8 +1,9 @@
 """The HTTP API under `/v1`: push ingestion, paginated reads, alert acknowledge and snooze.
 
 `POST /v1/forecasts`, `/v1/actuals` and `/v1/series` take a JSON array of rows with the CONTRACT
-columns, or `text/csv`, and answer with the object `ingest --json` prints, from the same ingest
-path: bad rows are counted and quarantined with their reasons, never a server error. A body over
+columns, or `text/csv`, and answer with the object `ingest --json` prints plus `examples` (the
+first rejected rows, which `ingest` writes to stderr), from the same ingest path: bad rows are
+counted and quarantined with their reasons, never a server error. A body over
 `api.max_body_bytes` is refused with 413 before it is read whole. Writes need
 `Authorization: Bearer <api.token>`, compared in constant time; without a configured token every
 write is refused. Reads page with `limit`/`offset` (pairs with the `after` cursor, which stays
