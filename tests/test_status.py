@@ -231,6 +231,43 @@ def test_table_shows_worst_rows_first(
     assert out.count("bucket 2-3") == 12
 
 
+def test_table_leaves_benchmark_models_out_unless_asked(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """aftercast's own benchmark models are scored like any model and stay in --json and
+    --csv (CONTRACT rows per model); the table, read to find production forecasts in trouble,
+    shows them only with --benchmarks show or when one is named with --model."""
+    url = f"sqlite:///{tmp_path / 'bm.db'}"
+    path = tmp_path / "aftercast.yaml"
+    path.write_text(yaml.safe_dump({"store": {"url": url}, **SECTIONS}), encoding="utf-8")
+    engine = make_engine(url)
+    migrate(engine)
+    scenario = generate(
+        ScenarioSpec(n_series=3, days=20, horizons=3, models=("a", "b"), history_days=14, seed=5)
+    )
+    for kind in ("series", "actuals", "forecasts"):
+        frame = getattr(scenario, kind).reset_index(drop=True)
+        ingest_chunks(engine, load_config(str(path)), kind, kind, iter([Chunk(frame, 1)]))
+    monkeypatch.setenv("COLUMNS", "200")
+    capsys.readouterr()
+    assert main(["--config", str(path), "cycle", "--now", NOW]) == 0  # makes the benchmarks
+    rows = _strict_json(_cli(capsys, path, "--json", "--horizon", "all"))
+    models = {r["model"] for r in rows}
+    assert {"a", "b"} < models and any(m.startswith("benchmark:") for m in models)
+    production = [r for r in rows if not r["model"].startswith("benchmark:")]
+    hidden = _cli(capsys, path, "--horizon", "all", "--limit", "0")
+    assert "benchmark:" not in hidden.replace("--benchmarks show", "")
+    assert f"{len(production)} of" not in hidden and hidden.count("│ all │") == len(production)
+    assert "left out: --benchmarks show" in hidden
+    shown = _cli(capsys, path, "--horizon", "all", "--limit", "0", "--benchmarks", "show")
+    assert shown.count("│ all │") == len(rows)
+    named = _cli(capsys, path, "--horizon", "all", "--model", "benchmark:naive")
+    assert named.count("benchmark:naive") == sum(r["model"] == "benchmark:naive" for r in rows)
+    assert len(_strict_json(_cli(capsys, path, "--json", "--benchmarks", "hide"))) < len(
+        _strict_json(_cli(capsys, path, "--json"))
+    )
+
+
 def test_pages_of_one_series_give_the_same_rows(store_url: str) -> None:
     config = make_config(store_url, **SECTIONS)
     engine = make_engine(store_url)

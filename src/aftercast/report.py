@@ -27,6 +27,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import BigInteger, Column, Connection, Engine, Float, MetaData, Table, Text, text
 
+from aftercast.benchmark_methods import BENCHMARK_PREFIX
 from aftercast.config import WindowConfig
 from aftercast.periods import to_iso
 from aftercast.store.bulk import insert_frame
@@ -157,6 +158,7 @@ class StatusQuery:
     horizon: str | None = None  # '3', '2-7' or 'all'
     labels: tuple[tuple[str, str], ...] = ()
     limit: int | None = None
+    benchmarks: bool = True  # the rows of aftercast's own benchmark models too
 
 
 @dataclass
@@ -188,6 +190,8 @@ def _keep(rows: pd.DataFrame, query: StatusQuery) -> pd.DataFrame:
     keep = np.ones(len(rows), dtype=bool)
     if query.model is not None:
         keep &= (rows["model"] == query.model).to_numpy(bool)
+    if not query.benchmarks:
+        keep &= ~rows["model"].astype(str).str.startswith(BENCHMARK_PREFIX).to_numpy(bool)
     if query.horizon is not None:
         keep &= (rows["horizon"].astype(str) == query.horizon).to_numpy(bool)
     return rows[keep]

@@ -25,6 +25,7 @@ from rich.console import Console
 from rich.table import Table
 from sqlalchemy import Engine, text
 
+from aftercast.benchmark_methods import BENCHMARK_PREFIX
 from aftercast.commands.core import open_store
 from aftercast.config import load_config
 from aftercast.errors import AftercastError
@@ -92,6 +93,9 @@ def cmd_status(args: argparse.Namespace) -> int:
         horizon=_horizon(args.horizon, buckets),
         labels=_labels(args.label),
         limit=limit or None,
+        # The table is for finding the production forecasts in trouble; aftercast's benchmark
+        # models are shown when asked for, or by name. Machine output has every model's rows.
+        benchmarks=_benchmarks(args, table),
     )
     with open_status(engine, query) as result:
         if args.json:
@@ -102,7 +106,15 @@ def cmd_status(args: argparse.Namespace) -> int:
             print(f"aftercast: nothing to show: {_why_empty(engine, query, args)}", file=sys.stderr)
         else:
             print_status_table(list(result.rows), total=result.total, sort=query.sort)
+            if not query.benchmarks:
+                print("aftercast's own benchmark models are left out: --benchmarks show")
     return 0
+
+
+def _benchmarks(args: argparse.Namespace, table: bool) -> bool:
+    if args.benchmarks is not None:
+        return bool(args.benchmarks == "show")
+    return not table or bool(args.model and args.model.startswith(BENCHMARK_PREFIX))
 
 
 def _why_empty(engine: Engine, query: StatusQuery, args: argparse.Namespace) -> str:
@@ -137,6 +149,8 @@ def _why_empty(engine: Engine, query: StatusQuery, args: argparse.Namespace) -> 
     ]
     if given:
         return f"no rows in {where} match {', '.join(given)}"
+    if not query.benchmarks:
+        return f"no rows of production models in {where} (--benchmarks show adds aftercast's own)"
     return f"no rows in {where}"
 
 
@@ -209,6 +223,12 @@ def register(commands: Any) -> None:
     )
     status.add_argument("--series", metavar="PATTERN", help="series keys matching a shell pattern")
     status.add_argument("--model", help="only this model")
+    status.add_argument(
+        "--benchmarks",
+        choices=["show", "hide"],
+        help="rows of aftercast's own benchmark models (default: hidden in the table, "
+        "shown in --json and --csv)",
+    )
     status.add_argument(
         "--buckets",
         action="store_true",
