@@ -97,9 +97,17 @@ def test_refused_three_times_then_accepted_arrives_exactly_once(
     assert row["notification_id"] == ids.pop()
 
 
+def channel_log(caplog: pytest.LogCaptureFixture) -> list[str]:
+    return [m for r in caplog.records if "channel 'ops-hook'" in (m := r.getMessage())]
+
+
 def test_refused_for_good_is_dead_after_max_attempts_and_shows(
-    store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    store_url: str,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    caplog: pytest.LogCaptureFixture,
 ) -> None:
+    caplog.set_level(logging.INFO)
     with HttpRecorder(default_status=500) as server:
         engine, config = queue_one(store_url, [hook(server.url())], max_attempts=3)
         clock = int(time.time())
@@ -109,6 +117,10 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
         assert len(server.requests) == 3
     row = outbox(engine).iloc[0]
     assert row["status"] == "dead" and "gave up after 3 attempts" in row["detail"]
+    # The channel's own log line says what the outbox did: two retries, then given up.
+    lines = channel_log(caplog)
+    assert [line.split(": ", 1)[1].split(" (")[0] for line in lines] == ["retry", "retry", "dead"]
+    assert "dead (gave up after 3 attempts: " in lines[2] and "HTTP 500" in lines[2]
     path = tmp_path / "c.yaml"
     path.write_text(f"store:\n  url: {store_url}\n")
     assert main(["--config", str(path), "alerts", "notifications"]) == 0
@@ -120,6 +132,19 @@ def test_refused_for_good_is_dead_after_max_attempts_and_shows(
     assert main(["--config", str(path), "alerts", "notifications", "--json"]) == 0
     listed = json.loads(capsys.readouterr().out)
     assert [(n["status"], n["attempts"], n["due_at"]) for n in listed] == [("dead", 3, None)]
+
+
+def test_one_allowed_attempt_is_given_up_in_the_singular(
+    store_url: str, caplog: pytest.LogCaptureFixture
+) -> None:
+    caplog.set_level(logging.INFO)
+    with HttpRecorder(default_status=503) as server:
+        engine, config = queue_one(store_url, [hook(server.url())], max_attempts=1)
+        assert deliver_due(engine, config, now=int(time.time())).dead == 1
+    detail = str(outbox(engine).iloc[0]["detail"])
+    assert detail.startswith("gave up after 1 attempt: ") and "HTTP 503" in detail
+    [line] = channel_log(caplog)
+    assert line.endswith(f"dead ({detail})") and "retry" not in line
 
 
 def test_a_dead_notification_retried_by_hand_goes_out_with_its_id(

@@ -180,6 +180,10 @@ def test_retry_statuses_and_permanent_failures(store: Engine) -> None:
         config = make_config(str(store.url), sources=[_source(s.url, name="gone")])
         (result,) = pull_all(store, config)
     assert not result.ok and result.attempts == 1 and "404" in str(result.error)
+    with GetServer(default=Answer(status=503, body=b"busy")) as s:
+        config = make_config(str(store.url), sources=[_source(s.url, name="once", retries=0)])
+        (result,) = pull_all(store, config)
+    assert not result.ok and str(result.error).endswith("gave up after 1 attempt")
 
 
 def test_json_rows_under_a_key_with_a_header_from_the_environment(

@@ -152,6 +152,15 @@ class DeliveryOutcome:
     def dead(cls, detail: str) -> DeliveryOutcome:
         return cls("dead", detail)
 
+    def given_up(self, attempts: int) -> DeliveryOutcome:
+        """This retry as the dead end of the last allowed attempt, number `attempts`.
+
+        >>> DeliveryOutcome.retry("HTTP 503").given_up(1).detail
+        'gave up after 1 attempt: HTTP 503'
+        """
+        tries = "1 attempt" if attempts == 1 else f"{attempts} attempts"
+        return DeliveryOutcome.dead(f"gave up after {tries}: {self.detail}")
+
 
 class Channel(ABC):
     """A way to deliver notifications; subclasses set `type`, `config_model` and `_send`."""
@@ -167,13 +176,23 @@ class Channel(ABC):
     def __repr__(self) -> str:
         return f"<{type(self).__name__} {self.name!r}>"
 
-    def deliver(self, notification: Notification) -> DeliveryOutcome:
-        """Try once to deliver; never raises, whatever the channel or the network does."""
+    def deliver(
+        self, notification: Notification, *, last_attempt: int | None = None
+    ) -> DeliveryOutcome:
+        """Try once to deliver; never raises, whatever the channel or the network does.
+
+        `last_attempt` is this attempt's number when no other will follow: a retry is then
+        logged as the message given up (dead), as the outbox records it. The outcome itself
+        stays a retry, so the deliverer still knows the channel is failing.
+        """
         try:
             outcome = self._send(notification)
         except Exception as exc:  # the outbox must always get an outcome, even from a bug
             outcome = DeliveryOutcome.retry(f"unexpected {type(exc).__name__}: {exc}")
         outcome = dataclasses.replace(outcome, detail=self._scrub(outcome.detail))
+        shown = outcome
+        if outcome.status == "retry" and last_attempt is not None:
+            shown = outcome.given_up(last_attempt)
         level = logging.INFO if outcome.status == "delivered" else logging.WARNING
         log.log(
             level,
@@ -181,8 +200,8 @@ class Channel(ABC):
             self.type,
             self.name,
             notification.id,
-            outcome.status,
-            outcome.detail,
+            shown.status,
+            shown.detail,
         )
         return outcome
 

@@ -95,7 +95,7 @@ def deliver_due(
             if not renew(engine, claim, worker, clock(), delivery.lease_seconds):
                 report.lost += 1  # its lease lapsed and another deliverer took it over
                 continue
-            outcome = _send(channels, claim)
+            outcome = _send(channels, claim, delivery.max_attempts)
             status = finish(engine, claim, outcome, worker, clock(), delivery, rng)
             _count(report, claim, outcome, status)
             if outcome.status == "retry":
@@ -117,11 +117,12 @@ def _clock(now: int | Callable[[], int] | None) -> Callable[[], int]:
     return lambda: int(time.time())
 
 
-def _send(channels: Mapping[str, Channel], claim: Claim) -> DeliveryOutcome:
+def _send(channels: Mapping[str, Channel], claim: Claim, max_attempts: int) -> DeliveryOutcome:
     channel = channels.get(claim.channel)
     if channel is None:
         return DeliveryOutcome.dead(f"channel {claim.channel!r} is no longer configured")
-    return channel.deliver(Notification.from_json(claim.payload))
+    last = claim.attempts if claim.attempts >= max_attempts else None
+    return channel.deliver(Notification.from_json(claim.payload), last_attempt=last)
 
 
 def _count(report: DeliveryReport, claim: Claim, outcome: DeliveryOutcome, status: str) -> None:

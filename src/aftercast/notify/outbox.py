@@ -175,9 +175,7 @@ def finish(
     elif outcome.status == "dead":
         values.update(status=DEAD, detail=outcome.detail)
     elif claim.attempts >= delivery.max_attempts:
-        values.update(
-            status=DEAD, detail=f"gave up after {claim.attempts} attempts: {outcome.detail}"
-        )
+        values.update(status=DEAD, detail=outcome.given_up(claim.attempts).detail)
     else:
         delay = retry_delay(claim.attempts, delivery, outcome.retry_after_seconds, rng)
         values.update(status=PENDING, due_at=now + math.ceil(delay), detail=outcome.detail)

@@ -126,9 +126,8 @@ class HttpSource(Source):
                 raise SourceError(f"GET {self.settings.url}: {exc}", attempt + 1) from None
             if attempt + 1 < attempts:
                 time.sleep(self._pause(attempt, response))
-        raise SourceError(
-            f"GET {self.settings.url}: {problem}; gave up after {attempts} attempts", attempts
-        )
+        tries = "1 attempt" if attempts == 1 else f"{attempts} attempts"
+        raise SourceError(f"GET {self.settings.url}: {problem}; gave up after {tries}", attempts)
 
     def _chunks(self, body: bytes) -> Iterator[Chunk]:
         if self.settings.format == "csv":
