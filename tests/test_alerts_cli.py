@@ -150,6 +150,12 @@ def test_snooze_until_a_time_or_for_a_duration(
     with engine.connect() as connection:  # two hours on, the 90-minute snooze has run out
         later = {str(r["id"]): r for r in alert_rows(connection, now=after + 7200)}
     assert later[first]["snoozed"] and not later[second]["snoozed"]
+    # The same rule as a cycle's: a snooze ending within the slack after now is already over.
+    end = int(until[int(second)])
+    with engine.connect() as connection:
+        near = {str(r["id"]): r["snoozed"] for r in alert_rows(connection, now=end - 30)}
+        early = {str(r["id"]): r["snoozed"] for r in alert_rows(connection, now=end - 61)}
+    assert (near[second], early[second]) == (False, True)
     assert main(["--config", str(path), "alerts"]) == 0
     assert capsys.readouterr().out.count("[snoozed until ") == 2
 

@@ -174,6 +174,20 @@ def _settings(rule: pd.Series, latest: pd.DataFrame, parameters: pd.DataFrame) -
     return out.fillna({"raise_after": 1, "clear_after": 1, "remind_seconds": 0})
 
 
+def snooze_running(snoozed_until: object, now: int) -> np.ndarray:
+    """Whether each snooze still holds at a cycle run at `now`; null (no snooze) is False.
+
+    A snooze that ends within `CYCLE_SLACK_SECONDS` after `now` is over already: the cycle
+    sends what it held back, and the listings, which ask here too, no longer show it snoozed.
+
+    >>> snooze_running(np.array([None, 1000, 1061], dtype=object), now=1000).tolist()
+    [False, False, True]
+    """
+    until = np.asarray(snoozed_until, dtype=float)
+    with np.errstate(invalid="ignore"):
+        return until > now + CYCLE_SLACK_SECONDS
+
+
 def _notices(
     frame: pd.DataFrame,
     settings: pd.DataFrame,
@@ -185,7 +199,7 @@ def _notices(
     state = frame["state"].to_numpy(dtype=object)
     # A scheduler fires a little early or late; a snooze ending or a reminder falling due within
     # the slack after this cycle's clock goes with this cycle rather than a whole cycle late.
-    snoozed = (frame["snoozed_until"].astype(float) > now + CYCLE_SLACK_SECONDS).to_numpy()
+    snoozed = snooze_running(frame["snoozed_until"].to_numpy(), now)
     notified = frame["notified_at"].astype(float).to_numpy()
     told = ~np.isnan(notified)
     remind = settings["remind_seconds"].to_numpy()

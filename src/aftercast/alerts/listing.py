@@ -16,7 +16,7 @@ from typing import Any
 import pandas as pd
 from sqlalchemy import Connection
 
-from aftercast.alerts.lifecycle import ACKNOWLEDGED, OPEN_STATES, RAISED
+from aftercast.alerts.lifecycle import ACKNOWLEDGED, OPEN_STATES, RAISED, snooze_running
 from aftercast.periods import to_iso
 from aftercast.store.bulk import read_frame
 
@@ -52,10 +52,10 @@ def alert_rows(
 
     Each row: id, series_id, model, horizon, rule, state, active (raised or acknowledged),
     severity, opened_at (start of the run of cycles that raised it), raised_at, cleared_at,
-    acknowledged_by/at, snoozed_until/by, snoozed (a snooze still running at `now`, default
-    the clock), statistic, p_adjusted (the fleet-adjusted p-value the
-    rule read), summary, evidence (with the test's raw `p_value`) and the latest notification's
-    status, attempts and detail.
+    acknowledged_by/at, snoozed_until/by, snoozed (a snooze that a cycle at `now`, default the
+    clock, still honours: one ending within the cycle slack is over), statistic, p_adjusted
+    (the fleet-adjusted p-value the rule read), summary, evidence (with the test's raw
+    `p_value`) and the latest notification's status, attempts and detail.
     """
     states = OPEN_STATES if not include_cleared else (*OPEN_STATES, "cleared")
     marks = ", ".join(f":s{i}" for i in range(len(states)))
@@ -72,7 +72,7 @@ def alert_rows(
     rows = []
     for record in frame.drop(columns="_r").to_dict("records"):
         row = {k: _clean(v) for k, v in record.items()}
-        row["snoozed"] = row["snoozed_until"] is not None and row["snoozed_until"] > clock
+        row["snoozed"] = bool(snooze_running(row["snoozed_until"], clock))
         for name in _TIMES:
             row[name] = to_iso(row[name])
         row["opened_at"] = row.pop("since_at")
