@@ -74,7 +74,11 @@ def test_run_stores_pairs_whose_errors_and_summary_match_outside_definitions(
 
 
 def test_command_prints_json_and_refuses_impossible_folds(
-    engine: Engine, config: Config, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    engine: Engine,
+    config: Config,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     scenario = generate(ScenarioSpec(n_series=2, days=10, horizons=3, history_days=60, seed=4))
     load_through(engine, config, scenario, 9)
@@ -84,5 +88,9 @@ def test_command_prints_json_and_refuses_impossible_folds(
     assert main(["--config", str(path), "backtest", "--json", "--horizon", "7"]) == 0
     out = capsys.readouterr()
     assert json.loads(out.out)["folds"] == 5
+    monkeypatch.setenv("COLUMNS", "40")  # in a pipe the table is printed whole all the same
+    assert main(["--config", str(path), "backtest", "--horizon", "7"]) == 0
+    table = capsys.readouterr().out
+    assert "\u2026" not in table and " cov 80% " in table and " seasonal-naive " in table
     assert main(["--config", str(path), "backtest", "--horizon", "60"]) == 2
     assert "no series has enough history" in capsys.readouterr().err

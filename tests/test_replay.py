@@ -37,7 +37,11 @@ def _counts(engine: Engine) -> tuple[int, int, int]:
 
 
 def test_replay_raises_the_shift_after_it_starts_and_stores_nothing(
-    engine: Engine, store_url: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    engine: Engine,
+    store_url: str,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     config = make_config(store_url, **SECTIONS)
     spec = ScenarioSpec(
@@ -62,4 +66,8 @@ def test_replay_raises_the_shift_after_it_starts_and_stores_nothing(
     assert main(args) == 0
     printed = json.loads(capsys.readouterr().out)
     assert printed["alerts"] == report.alerts
+    monkeypatch.delenv("COLUMNS", raising=False)  # in a pipe, with no width to fit
+    assert main(args[:-1]) == 0  # the table shows every header and cell whole
+    table = capsys.readouterr().out
+    assert "\u2026" not in table and " severity " in table and "coverage_low" in table
     assert main([*args[:-5], "--from", "2026-07-06", "--to", "2026-06-01"]) == 2

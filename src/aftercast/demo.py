@@ -185,7 +185,7 @@ def _run(console: Console, config_path: Path, *argv: str) -> None:
 
 
 def run_demo(folder: Path | None = None) -> int:
-    # Tables printed by the commands below read COLUMNS when output is not a terminal.
+    # The demo's own rules span COLUMNS when output is not a terminal (its tables are whole).
     os.environ.setdefault("COLUMNS", "150")
     console = Console()
     started = time.perf_counter()

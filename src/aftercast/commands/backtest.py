@@ -18,6 +18,7 @@ from aftercast.backtest import BacktestOptions, BacktestResult, run_backtest
 from aftercast.benchmark_methods import METHODS
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
+from aftercast.commands.tables import table_console
 from aftercast.config import load_config
 from aftercast.detect.baselines import seed_from_backtest
 
@@ -78,7 +79,7 @@ def cmd_backtest(args: argparse.Namespace) -> int:
     if args.json:
         print_json(result.as_json())
     else:
-        Console().print(_table(result))
+        table_console().print(_table(result))
     return 0
 
 

@@ -16,6 +16,7 @@ from rich.table import Table
 
 from aftercast.cli import print_json
 from aftercast.commands.core import open_store
+from aftercast.commands.tables import table_console
 from aftercast.config import load_config
 from aftercast.errors import AftercastError
 from aftercast.periods import parse_instant
@@ -69,7 +70,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     if args.json:
         print_json(report.as_json())
         return 0
-    Console().print(_table(report))
+    table_console().print(_table(report))
     for rule, count in sorted(report.per_detection.items()):
         print(f"{rule}: {count} alert(s)")
     return 0

@@ -21,12 +21,12 @@ import time
 from collections.abc import Iterable
 from typing import Any
 
-from rich.console import Console
 from rich.table import Table
 from sqlalchemy import Engine, text
 
 from aftercast.benchmark_methods import BENCHMARK_PREFIX
 from aftercast.commands.core import open_store
+from aftercast.commands.tables import table_console
 from aftercast.config import load_config
 from aftercast.errors import AftercastError
 from aftercast.periods import parse_instant, to_iso
@@ -203,7 +203,7 @@ def print_status_table(
             *[_fmt(r["coverage"].get(lv)) for lv in levels],
             _fmt(r.get("tracking_signal"), 1),
         )
-    console = Console()
+    console = table_console()
     console.print(table)
     if total is not None and total > len(records):
         console.print(f"{len(records)} of {total} rows; --limit 0 shows all, --json or --csv all")
