@@ -122,6 +122,31 @@ def test_ingesting_a_series_file_again_changes_nothing(
     assert _labels(engine)["b"] == {"region": "north"}  # no label_region column: region stays
 
 
+def test_label_numbers_are_stored_as_written_pushed_or_in_json_lines(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    from aftercast.ingest import ingest_records
+
+    # A null in the column makes pandas read its numbers as floats; 5 must not become "5.0".
+    pushed = [
+        {"series_id": "a", "label_store": 5, "label_ratio": 1.5},
+        {"series_id": "b", "label_store": None, "label_ratio": None},
+        {"series_id": "c", "label_store": "0017", "label_ratio": 2},
+    ]
+    assert ingest_records(engine, config, "series", pushed, "POST /v1/series").accepted == 3
+    lines = ['{"series_id": "d", "label_shelf": 12}', '{"series_id": "e", "label_shelf": null}']
+    path = tmp_path / "s.jsonl"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert ingest_path(engine, config, "series", path).accepted == 2
+    assert _labels(engine) == {
+        "a": {"store": "5", "ratio": "1.5"},
+        "b": {},
+        "c": {"store": "0017", "ratio": "2"},
+        "d": {"shelf": "12"},
+        "e": {},
+    }
+
+
 def _labels(engine: Engine) -> dict[str, dict[str, str]]:
     return {key: json.loads(text) for key, text in _series(engine)["labels"].items()}
 

@@ -67,7 +67,7 @@ def _labels(frame: pd.DataFrame) -> pd.Series | str:
     labels = [c for c in frame.columns if str(c).startswith("label_")]
     if not labels:
         return "{}"
-    label_frame = frame[labels].astype("string")
+    label_frame = frame[labels].apply(_numbers_as_written).astype("string")
     label_frame.columns = [str(c).removeprefix("label_") for c in labels]
     return pd.Series(
         [
@@ -76,6 +76,20 @@ def _labels(frame: pd.DataFrame) -> pd.Series | str:
         ],
         index=frame.index,
     )
+
+
+def _numbers_as_written(cells: pd.Series) -> pd.Series:
+    """A JSON label given as a number, as it was written: a whole number as its integer text.
+
+    A JSON column of numbers with a null among them is read as floats, which would store 5 as
+    "5.0". Text cells (all of a CSV file's) are left exactly as they are.
+
+    >>> _numbers_as_written(pd.Series([5.0, None, 2.5, "7.0"], dtype=object)).tolist()
+    ['5', None, 2.5, '7.0']
+    """
+    if cells.dtype.kind not in "fO":
+        return cells
+    return cells.map(lambda v: str(int(v)) if isinstance(v, float) and v.is_integer() else v)
 
 
 def _empty(value: object) -> bool:
