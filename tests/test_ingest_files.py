@@ -19,7 +19,7 @@ from sqlalchemy import Engine, text
 
 from aftercast.config import Config
 from aftercast.errors import InputFileError
-from aftercast.ingest import ingest_chunks, ingest_path
+from aftercast.ingest import ingest_chunks, ingest_path, ingest_records
 from aftercast.ingest.files import Chunk, read_chunks
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import make_engine, migrate
@@ -268,6 +268,21 @@ def test_a_nul_character_is_rejected_where_postgresql_could_not_store_it(
     alone = tmp_path / "alone.csv"  # its only key holds a NUL: never even looked up
     alone.write_bytes(b"series_id,observed_at,value\ns\x00,2026-01-01T00:00:00Z,1\n")
     assert ingest_path(engine, config, "actuals", alone).rejected == 1
+
+
+def test_a_key_of_a_nul_alone_and_an_empty_key_stay_two_rejections(
+    engine: Engine, config: Config
+) -> None:
+    """pandas' text hash table reads "\x00" as "": factorized together, the empty key took the
+    NUL text and reached the store's lookup, which PostgreSQL refuses ("cannot contain NUL").
+    Found by the API's generated requests (tests/test_web_openapi.py) on PostgreSQL."""
+    rows = [{"series_id": "\x00"}, {"series_id": ""}, {"series_id": "ok"}]
+    report = ingest_records(engine, config, "series", rows, "push")
+    assert (report.accepted, report.rejected) == (1, 2)
+    assert sorted(e.split(": ", 1)[1] for e in report.examples) == [
+        "missing series_id",
+        "series_id holds a NUL character",
+    ]
 
 
 @pytest.mark.parametrize("chunk_rows", [1_000, 200_000])

@@ -62,19 +62,24 @@ def text_values(frame: pd.DataFrame, column: str) -> pd.Series:
 
 def key_values(frame: pd.DataFrame, column: str, reasons: Reasons) -> pd.Series:
     # Before factorizing: pandas' text hash table ends a text at a NUL, so "a\x00" would
-    # silently become "a".
-    flag_nul(frame[column], column, reasons)
+    # silently become "a", and "\x00" and "" would share one code (and one text). The rows
+    # rejected for a NUL are left out of the factorizing.
+    holds = flag_nul(frame[column], column, reasons)
+    if holds.any():
+        frame = frame[[column]].mask(holds.to_numpy(bool)[:, None])
     values = text_values(frame, column)
     reasons.flag(values.isna(), f"missing {column}")
     return values
 
 
-def flag_nul(values: pd.Series, column: str, reasons: Reasons) -> None:
-    """Reject text holding a NUL character, which PostgreSQL's text type cannot store."""
+def flag_nul(values: pd.Series, column: str, reasons: Reasons) -> pd.Series:
+    """Reject text holding a NUL character, which PostgreSQL's text type cannot store; the
+    rows that hold one."""
     if values.dtype.kind not in "OU" and not isinstance(values.dtype, pd.StringDtype):
-        return  # numbers and times hold no text
+        return pd.Series(False, index=values.index)  # numbers and times hold no text
     holds = values.astype("string").str.contains("\x00", regex=False, na=False)
     reasons.flag(holds, f"{column} holds a NUL character")
+    return holds
 
 
 def time_values(frame: pd.DataFrame, column: str, zones: pd.Series, reasons: Reasons) -> pd.Series:
