@@ -65,9 +65,13 @@ def _baselines(engine: Engine, config: Config, end: int) -> tuple[pd.DataFrame, 
             wanted = wanted.merge(stored[KEY], on=KEY, how="left", indicator=True)
             wanted = wanted.loc[wanted["_merge"] == "left_only", KEY]
         made, made_losses = pending_baselines(connection, config, wanted, end)
-    summary = pd.concat([stored, made], ignore_index=True)
-    losses = pd.concat([stored_losses, made_losses], ignore_index=True)
-    return summary, losses
+    return _stacked(stored, made), _stacked(stored_losses, made_losses)
+
+
+def _stacked(first: pd.DataFrame, second: pd.DataFrame) -> pd.DataFrame:
+    # An empty frame is left out of the concatenation, whose dtypes it would otherwise decide.
+    parts = [frame for frame in (first, second) if len(frame)] or [first]
+    return pd.concat(parts, ignore_index=True)
 
 
 def _episodes(flags: pd.DataFrame, days: np.ndarray) -> pd.DataFrame:
