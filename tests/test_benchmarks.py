@@ -266,3 +266,54 @@ def test_a_daily_feed_of_actuals_and_forecasts_gets_every_benchmark(
         activity = read_frame(connection, "SELECT series_id, model_id FROM forecast_activity")
     assert len(activity) == small.forecasts[["series_id", "model"]].drop_duplicates().shape[0]
     other.dispose()
+
+
+def test_a_model_backfilled_behind_the_daily_one_gets_its_benchmarks_once(
+    config: Config,
+    engine: Engine,
+    small: Scenario,
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """Model A fed and cycled day by day, then model B's forecasts for the same days arrive:
+    every B issue time A did not share gets its benchmarks, those A shared are not made again,
+    and the store ends as when both were loaded at once."""
+    from aftercast import benchmarks
+
+    made: list[int] = []
+    make = benchmarks._forecast_frames
+
+    def counted(config: Config, history: pd.DataFrame, missing: pd.DataFrame):  # type: ignore[no-untyped-def]
+        made.append(len(missing))
+        return make(config, history, missing)
+
+    monkeypatch.setattr(benchmarks, "_forecast_frames", counted)
+    a = small.forecasts.loc[small.forecasts["model"] == "shop-planner"]
+    b = small.forecasts.loc[small.forecasts["model"] == "quick-trend"].copy()
+    own = b["issued_at"].dt.day % 2 == 0  # every other day B issues two hours after A
+    b.loc[own, "issued_at"] += pd.Timedelta(hours=2)
+    both = replace(small, forecasts=pd.concat([a, b], ignore_index=True))
+    at_once_url = f"sqlite:///{tmp_path / 'at-once.db'}"
+    at_once = make_engine(at_once_url)
+    migrate(at_once)
+    load_through(at_once, make_config(at_once_url), both, 12)
+    cycle_on(at_once, make_config(at_once_url), small, 12)
+    expected = _benchmark_rows(at_once)
+    at_once.dispose()
+
+    load_through(engine, config, replace(small, forecasts=a.iloc[:0]), -1)
+    for day in range(13):
+        feed_day(engine, config, replace(small, forecasts=a), day)
+        cycle_on(engine, config, small, day)
+    made.clear()
+    load_through(engine, config, both, 12)  # B, issued before A's latest issue period
+    backfilled = b.loc[own & (b["issued_at"] < day_start(small, 13))]
+    wanted = len(backfilled.drop_duplicates(["series_id", "issued_at", "target_at"])) * 2
+    assert wanted == 6 * 6 * 5 * 2  # series x B's own issue days x horizons x methods
+    assert cycle_on(engine, config, small, 12).benchmarks == wanted
+    assert made == [wanted]  # none of those A's issue times had were made again
+    pd.testing.assert_frame_equal(_benchmark_rows(engine), expected)
+    made.clear()
+    assert cycle_on(engine, config, small, 12).benchmarks == 0
+    assert made == []
+    pd.testing.assert_frame_equal(_benchmark_rows(engine), expected)

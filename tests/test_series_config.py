@@ -149,3 +149,35 @@ def test_an_entry_label_a_series_file_removes_comes_back_at_the_next_sync(
     assert stored(engine)["labels"] == {"shelf": "a"}  # the file removed team
     assert sync_series_entries(engine, config) == []
     assert stored(engine)["labels"] == {"team": "planning", "shelf": "a"}  # the entry on top
+
+
+@pytest.mark.parametrize("path", ["file", "push"])
+def test_a_series_first_created_by_a_series_file_takes_its_entry(
+    engine: Engine, store_url: str, tmp_path: Path, path: str
+) -> None:
+    hourly = {"frequency": "h", "season": 24, "timezone": "Europe/Berlin", "unit": "loaves"}
+    config = entry_config(
+        store_url,
+        {"id": KEY, **hourly, "labels": {"team": "planning"}},
+        {"id": "shop-002/bun", "season": 12},
+    )
+    rows = [  # the entry wins where it speaks, the file's own cells fill in, defaults the rest
+        {"series_id": KEY, "frequency": "D", "unit": "", "label_team": "x", "label_shelf": "a"},
+        {"series_id": "shop-002/bun", "frequency": "h", "unit": "buns"},
+        {"series_id": "shop-003/loaf", "unit": "loaves"},
+    ]
+    if path == "file":
+        file = tmp_path / "series.csv"
+        pd.DataFrame(rows).to_csv(file, index=False)
+        assert ingest_path(engine, config, "series", file).accepted == 3
+    else:
+        from aftercast.ingest import ingest_records
+
+        assert ingest_records(engine, config, "series", rows, "POST /v1/series").accepted == 3
+    assert stored(engine) == {**hourly, "labels": {"team": "planning", "shelf": "a"}}
+    bun = {"frequency": "h", "season": 12, "timezone": "UTC", "unit": "buns", "labels": {}}
+    assert stored(engine, "shop-002/bun") == bun
+    loaf = {"frequency": "D", "season": 7, "timezone": "UTC", "unit": "loaves", "labels": {}}
+    assert stored(engine, "shop-003/loaf") == loaf
+    assert sync_series_entries(engine, config) == []
+    assert stored(engine)["frequency"] == "h"  # nothing left for the sync to correct

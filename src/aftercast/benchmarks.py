@@ -1,18 +1,18 @@
-"""The benchmark stage: aftercast's own forecasts at every new issue time of a production forecast.
+"""The benchmark stage: aftercast's own forecasts at every issue time of a production forecast.
 
-Runs before matching. For each series with newly queued forecasts it finds the production
-forecasts issued since the series' latest known issue period (an index range on
-(series, issue_period), never a scan of the forecasts table), keeps `forecast_activity` current
-(first and last issue per series and model, which baselines and the stalled-forecast check
-read), and makes the configured benchmark forecasts for the same issue times and targets from
-the actuals of the periods before the issue period (`benchmark_methods`; optionally ETS). They
-are stored as ordinary forecasts under the reserved names `benchmark:<method>` through the
-ingest path's upsert, so matching pairs and scores them like any model's. A benchmark is a
-function of the data alone: when an actual arrives late or is revised, the benchmarks issued
-after its period are made again (unchanged ones are left alone), so the store holds the same
-benchmarks whatever order the data came in. Incremental: only those issue times are touched.
-Issue times older than a series' latest already-seen issue period (a late backfill of
-forecasts) get their benchmark only when an earlier actual changes.
+Runs before matching. Every production forecast written queues its (series, issue period), so
+the stage reads exactly the issue periods that got new or changed forecasts (an index probe on
+(series, issue_period) each, never a scan of the forecasts table), whatever their model and
+however old their issue time: a new model's backfill is benchmarked like today's forecasts. It
+keeps `forecast_activity` current (first and last issue per series and model, which baselines
+and the stalled-forecast check read), and makes the configured benchmark forecasts those issue
+times and targets lack, from the actuals of the periods before the issue period
+(`benchmark_methods`; optionally ETS); one already stored is not made again. They are stored
+as ordinary forecasts under the reserved names `benchmark:<method>` through the ingest path's
+upsert, so matching pairs and scores them like any model's. A benchmark is a function of the
+data alone: when an actual arrives late or is revised, the benchmarks issued after its period
+are made again (unchanged ones are left alone), so the store holds the same benchmarks
+whatever order the data came in.
 """
 
 from __future__ import annotations
@@ -22,14 +22,15 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, Engine
+from sqlalchemy import Connection, Engine, text
 
 from aftercast import benchmark_methods
 from aftercast.benchmark_methods import BENCHMARK_PREFIX
 from aftercast.config import Config
 from aftercast.ingest.load import write_forecasts
 from aftercast.ingest.validate import Checked
-from aftercast.store.bulk import insert_frame, read_frame, stage_keys
+from aftercast.store import schema
+from aftercast.store.bulk import insert_frame, key_rows, read_frame, stage_keys
 from aftercast.store.catalog import ensure_models
 from aftercast.store.db import refresh_statistics, write
 from aftercast.store.schema_detect import forecast_activity
@@ -38,7 +39,6 @@ _FORECAST_COLUMNS = (
     "f.series_id, f.model_id, f.issued_at, f.issue_period, f.target_at, f.target_period, f.horizon"
 )
 _REQUEST_KEY = ["series_id", "issued_at", "target_at"]
-_NO_WATERMARK = -(2**62)
 
 
 @dataclass
@@ -61,40 +61,76 @@ def _queued_series(engine: Engine) -> pd.DataFrame:
         )
 
 
-def _production_forecasts(connection: Connection, series_ids: np.ndarray) -> pd.DataFrame:
-    """Production forecasts whose benchmarks are new or may have changed, per series.
+@dataclass
+class _Fresh:
+    """What the benchmark stage reads for a batch of series (production forecasts only)."""
 
-    Those issued in or after the series' latest already-seen issue period (new forecasts), and
-    those issued after the earliest period whose actual arrived or changed since the last
-    cycle (their benchmarks knew less, or another value, when they were made).
+    queued: pd.DataFrame  # issued in a queued issue period: new, or changed, forecasts
+    later: pd.DataFrame  # issued after an actual that arrived or changed
+    made: pd.DataFrame  # (series, issue time, target, model) of benchmarks already stored
+
+    def production(self) -> pd.DataFrame:
+        both = pd.concat([self.queued, self.later], ignore_index=True)
+        return both.drop_duplicates(["series_id", "model_id", "issued_at", "target_at"])
+
+
+def _fresh_forecasts(connection: Connection, series_ids: np.ndarray) -> _Fresh:
+    """The forecasts whose benchmarks are missing or may have changed; consumes their queue.
+
+    Those of the issue periods queued since the last cycle (every production forecast queues
+    its issue period, whatever its model and however old its issue time), read with the
+    benchmarks already stored for them, and those issued after the earliest period whose actual
+    arrived or changed since the last cycle (their benchmarks knew less, or another value, when
+    they were made).
     """
     staged_series = stage_keys(connection, "bm_series", pd.DataFrame({"series_id": series_ids}))
-    marks = read_frame(
+    issues = read_frame(
         connection,
-        "SELECT a.series_id, MAX(a.last_issue_period) AS seen FROM forecast_activity a "
-        f"JOIN {staged_series} s ON s.series_id = a.series_id GROUP BY a.series_id",
+        f"SELECT q.series_id, q.period FROM match_queue q JOIN {staged_series} s "
+        f"ON s.series_id = q.series_id WHERE q.kind = {schema.QUEUE_ISSUE}",
     )
-    changed = read_frame(
+    queued_issues, params = key_rows(connection, "q", issues)
+    queued = read_frame(
         connection,
-        "SELECT q.series_id, MIN(q.period) + 1 AS changed FROM match_queue q "
-        f"JOIN {staged_series} s ON s.series_id = q.series_id WHERE q.kind = 1 "
-        "GROUP BY q.series_id",
+        f"SELECT {_FORECAST_COLUMNS}, CASE WHEN m.name LIKE :prefix THEN 1 ELSE 0 END AS made "
+        # One probe of (series_id, issue_period) per queued issue period: left to itself,
+        # SQLite scanned all of `forecasts` for a join to a staged table (the CROSS JOIN order).
+        f"FROM {queued_issues} CROSS JOIN forecasts f JOIN models m ON m.id = f.model_id "
+        "WHERE f.series_id = q.series_id AND f.issue_period = q.period",
+        {"prefix": f"{BENCHMARK_PREFIX}%", **params},
     )
-    since = pd.Series(series_ids, name="series_id").to_frame()
-    since = since.merge(marks, on="series_id", how="left").merge(
-        changed, on="series_id", how="left"
-    )
-    # A series never seen has only new forecasts, all of them wanted, whatever actuals came
-    # with them: its watermark is the lowest there is, not the changed period's.
-    since["since"] = np.fmin(since["seen"].fillna(_NO_WATERMARK), since["changed"])
-    since = since[["series_id", "since"]]
-    staged = stage_keys(connection, "bm_since", since.astype("int64"))
-    return read_frame(
+    since = read_frame(
         connection,
-        f"SELECT {_FORECAST_COLUMNS} FROM forecasts f JOIN {staged} s "
-        "ON f.series_id = s.series_id AND f.issue_period >= s.since "
-        "JOIN models m ON m.id = f.model_id WHERE m.name NOT LIKE :prefix",
-        {"prefix": f"{BENCHMARK_PREFIX}%"},
+        "SELECT q.series_id, MIN(q.period) + 1 AS since FROM match_queue q "
+        f"JOIN {staged_series} s ON s.series_id = q.series_id WHERE q.kind = "
+        f"{schema.QUEUE_ACTUAL} GROUP BY q.series_id",
+    )
+    changed, since_params = key_rows(connection, "c", since)
+    later = read_frame(
+        connection,
+        f"SELECT {_FORECAST_COLUMNS} FROM {changed} CROSS JOIN forecasts f "
+        "JOIN models m ON m.id = f.model_id WHERE f.series_id = c.series_id "
+        # The constant bound is for PostgreSQL's estimate: it cannot size a range whose bound
+        # comes from a join, guessed a third of the table and read all of it.
+        "AND f.issue_period >= c.since AND f.issue_period >= :low AND m.name NOT LIKE :prefix",
+        {
+            "prefix": f"{BENCHMARK_PREFIX}%",
+            "low": int(since["since"].min()) if len(since) else 0,
+            **since_params,
+        },
+    )
+    connection.execute(
+        text(
+            "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
+            f"(SELECT q.series_id, q.period, {schema.QUEUE_ISSUE} FROM {queued_issues})"
+        ),
+        params,
+    )
+    made = queued["made"] == 1
+    return _Fresh(
+        queued=queued.loc[~made].drop(columns="made"),
+        later=later,
+        made=queued.loc[made, [*_REQUEST_KEY, "model_id"]],
     )
 
 
@@ -125,13 +161,18 @@ def record_activity(connection: Connection, fresh: pd.DataFrame) -> None:
     insert_frame(connection, forecast_activity, merged.astype("int64"))
 
 
-def _requests(fresh: pd.DataFrame, model_ids: dict[str, int]) -> pd.DataFrame:
-    """Every (issue time, target) of the production forecasts, once per benchmark method."""
-    requests = fresh.drop_duplicates(_REQUEST_KEY)[
-        ["series_id", "issued_at", "issue_period", "target_at", "target_period", "horizon"]
-    ]
+def _requests(fresh: _Fresh, model_ids: dict[str, int]) -> pd.DataFrame:
+    """Each benchmark to make: per method, every (issue time, target) of the queued production
+    forecasts that lacks it, and every one of those issued after a changed actual."""
+    columns = ["series_id", "issued_at", "issue_period", "target_at", "target_period", "horizon"]
     methods = pd.DataFrame({"method": list(model_ids), "model_id": list(model_ids.values())})
-    return requests.merge(methods, how="cross")
+    key = [*_REQUEST_KEY, "model_id"]
+    wanted = fresh.queued.drop_duplicates(_REQUEST_KEY)[columns].merge(methods, how="cross")
+    wanted = wanted.merge(fresh.made.drop_duplicates(), how="left", on=key, indicator=True)
+    lacking = wanted.loc[wanted.pop("_merge") == "left_only"]
+    again = fresh.later.drop_duplicates(_REQUEST_KEY)[columns].merge(methods, how="cross")
+    both = pd.concat([lacking, again], ignore_index=True)
+    return both.drop_duplicates(key, ignore_index=True)
 
 
 def _history(connection: Connection, requests: pd.DataFrame, lookback: int) -> pd.DataFrame:
@@ -199,7 +240,7 @@ def _store(connection: Connection, made: pd.DataFrame, intervals: pd.DataFrame) 
     ids = made["series_id"].unique()
     models = {str(m): int(m) for m in made["model_id"].unique()}
     written = write_forecasts(
-        connection, checked, pd.Series(ids, index=ids), models, int(time.time())
+        connection, checked, pd.Series(ids, index=ids), models, int(time.time()), benchmarks=True
     )
     return written.accepted + written.revised
 
@@ -207,17 +248,20 @@ def _store(connection: Connection, made: pd.DataFrame, intervals: pd.DataFrame) 
 def _benchmark_batch(
     connection: Connection, config: Config, series_ids: np.ndarray
 ) -> BenchmarkStats:
-    fresh = _production_forecasts(connection, series_ids)
+    fresh = _fresh_forecasts(connection, series_ids)
     stats = BenchmarkStats(series=len(series_ids))
-    if fresh.empty:
+    production = fresh.production()
+    if production.empty:
         return stats
-    record_activity(connection, fresh)
+    record_activity(connection, production)
     methods = benchmark_methods_in_use(config)
     if not methods:
         return stats
     model_ids = ensure_models(connection, [benchmark_methods.model_name(m) for m in methods])
     by_name = {m: model_ids[benchmark_methods.model_name(m)] for m in methods}
     missing = _requests(fresh, by_name)
+    if missing.empty:
+        return stats
     missing["season"] = (
         _seasons(connection, missing["series_id"].unique()).reindex(missing["series_id"]).to_numpy()
     )

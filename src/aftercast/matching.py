@@ -181,7 +181,10 @@ def match(
 ) -> MatchStats:
     """Drain the match queue (optionally only for some series), scoring pairs batch by batch."""
     with engine.connect() as connection:
-        queue = read_frame(connection, "SELECT series_id, period, kind FROM match_queue")
+        queue = read_frame(
+            connection,
+            f"SELECT series_id, period, kind FROM match_queue WHERE kind < {schema.QUEUE_ISSUE}",
+        )
     if series_ids is not None:
         queue = queue[queue["series_id"].isin(series_ids)]
     stats = MatchStats(queued=len(queue))

@@ -175,7 +175,7 @@ def _write_chunk(
     frame = chunk.frame
     if kind == "series":
         checked = series_rows.check(frame, chunk.first_row)
-        written = series_rows.write(connection, checked, now, config.series_defaults)
+        written = series_rows.write(connection, checked, now, config)
     else:
         keys = frame["series_id"].astype("string").str.strip().dropna()
         # Keys that validation will reject are not looked up (a NUL cannot even be sent).

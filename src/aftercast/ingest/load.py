@@ -113,8 +113,13 @@ def write_forecasts(
     series_ids: pd.Series,
     model_ids: dict[str, int],
     now: int,
+    benchmarks: bool = False,
 ) -> Written:
-    """Insert new forecasts, replace changed ones, count identical ones; queue their targets."""
+    """Insert new forecasts, replace changed ones, count identical ones; queue their targets.
+
+    The issue periods of production forecasts (not `benchmarks`, aftercast's own) are queued
+    too, so that the benchmark stage finds every new issue time, however late it arrives.
+    """
     rows = checked.good.copy()
     if rows.empty:
         return Written(unchanged=checked.duplicates)
@@ -165,9 +170,10 @@ def write_forecasts(
         schema.forecasts,
         written[columns].astype({"issued_at": "int64", "target_at": "int64"}),
     )
-    enqueue(
-        connection, written["series_id"].to_numpy(), written["target_period"].to_numpy(), kind=0
-    )
+    series = written["series_id"].to_numpy()
+    enqueue(connection, series, written["target_period"].to_numpy(), kind=schema.QUEUE_TARGET)
+    if not benchmarks:
+        enqueue(connection, series, written["issue_period"].to_numpy(), kind=schema.QUEUE_ISSUE)
     return Written(
         accepted=len(fresh), unchanged=int(same.sum()) + checked.duplicates, revised=len(changed)
     )
@@ -220,7 +226,12 @@ def write_actuals(
         recorded_at=now, batch_id=batch_id
     )
     insert_frame(connection, schema.actual_history, history)
-    enqueue(connection, written["series_id"].to_numpy(), written["period"].to_numpy(), kind=1)
+    enqueue(
+        connection,
+        written["series_id"].to_numpy(),
+        written["period"].to_numpy(),
+        kind=schema.QUEUE_ACTUAL,
+    )
     return Written(
         accepted=len(fresh), unchanged=int(same.sum()) + checked.duplicates, revised=len(revised)
     )

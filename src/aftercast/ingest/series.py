@@ -8,6 +8,11 @@ entries are refused (`store.catalog.sync_series_entries`).
 
 A file sets only the labels it has columns for: a series' other stored labels stay, and an
 empty cell in a `label_<name>` column removes that label from the row's series.
+
+A series the file creates takes its config `series:` entry first, as every path that creates a
+series does (`store.catalog.ensure_series`): what the entry sets wins, the file's non-empty
+cells fill what it leaves out, `series_defaults` the rest. For a series already stored the
+entry applies on top at the next sync, so creating it otherwise would not last.
 """
 
 from __future__ import annotations
@@ -18,7 +23,7 @@ import numpy as np
 import pandas as pd
 from sqlalchemy import Connection, text
 
-from aftercast.config import MAX_SEASON, SeriesDefaults
+from aftercast.config import MAX_SEASON, Config
 from aftercast.errors import InputFileError
 from aftercast.ingest.cells import Reasons, flag_nul, flag_unreadable, key_values
 from aftercast.ingest.load import Written
@@ -136,7 +141,22 @@ def check(frame: pd.DataFrame, first_row: int) -> Checked:
     return checked
 
 
-def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDefaults) -> Written:
+def _entry_settings(config: Config, keys: pd.Index) -> pd.DataFrame:
+    """What the config's `series:` entries set for `keys`: NA where an entry is silent."""
+    entries = {e.id: e for e in config.series}  # a key listed twice: the later entry wins
+    out = pd.DataFrame(
+        index=keys, columns=["frequency", "timezone", "season", "unit"], dtype=object
+    )
+    out["labels"] = [json.dumps(entries[k].labels) if k in entries else "{}" for k in keys]
+    for key in keys.intersection(list(entries)):
+        for column in ("frequency", "timezone", "season", "unit"):
+            value = getattr(entries[key], column)
+            if value is not None:
+                out.loc[key, column] = value
+    return out
+
+
+def write(connection: Connection, checked: Checked, now: int, config: Config) -> Written:
     """Create new series and update stored ones; refuse period-changing edits once data exists."""
     rows = checked.good.set_index("key")
     if rows.empty:
@@ -146,12 +166,21 @@ def write(connection: Connection, checked: Checked, now: int, defaults: SeriesDe
             rows[column] = pd.NA
     stored = series_settings(connection, rows.index)
     known = rows.index.intersection(stored.index)
+    fresh = rows.index.difference(stored.index)
+    entry = _entry_settings(config, fresh)
     merged = rows.copy()
     for column in ("frequency", "timezone", "season", "unit"):
-        fallback = pd.Series(getattr(defaults, column, None), index=rows.index, dtype=object)
+        default = getattr(config.series_defaults, column, None)
+        fallback = pd.Series(default, index=rows.index, dtype=object)
         fallback.loc[known] = stored.loc[known, column]
         merged[column] = rows[column].astype(object).where(rows[column].notna(), fallback)
+        wins = entry[column].notna()
+        merged.loc[wins[wins].index, column] = entry.loc[wins, column]
     merged["labels"] = _edit_labels(rows["labels"], stored["labels"].reindex(rows.index))
+    merged.loc[fresh, "labels"] = [
+        json.dumps({**json.loads(mine), **json.loads(theirs)}, sort_keys=True)
+        for mine, theirs in zip(merged.loc[fresh, "labels"], entry["labels"], strict=True)
+    ]
     _refuse_period_changes(connection, checked, merged.loc[known], stored.loc[known])
     merged = merged.drop(index=merged.index.intersection(checked.rejected_keys))
     new = merged.loc[merged.index.difference(stored.index)].reset_index(names="key")

@@ -247,6 +247,21 @@ def id_condition(
     return f"{column} IN (SELECT id FROM {staged})", {}
 
 
+def key_rows(connection: Connection, name: str, frame: pd.DataFrame) -> tuple[str, dict[str, Any]]:
+    """A FROM item `name` holding the rows of a frame of integer keys, with its parameters.
+
+    PostgreSQL gets one array parameter per column, unnested side by side: the planner knows
+    how many rows they hold and probes an index once per row, where a fresh staging table
+    (estimated at a thousand-odd rows) had it walk a whole index or table. SQLite gets the
+    staging table, kept as the outer loop by a CROSS JOIN after it.
+    """
+    if is_postgres(connection):
+        arrays = ", ".join(f"CAST(:{name}_{c} AS BIGINT[])" for c in frame.columns)
+        params = {f"{name}_{c}": _array_literal(frame[c].to_numpy(np.int64)) for c in frame.columns}
+        return f"unnest({arrays}) AS {name}({', '.join(frame.columns)})", params
+    return f"{stage_keys(connection, name, frame)} AS {name}", {}
+
+
 def _array_literal(values: np.ndarray) -> str:
     """A PostgreSQL array literal of integers, e.g. '{1,2,3}'."""
     return "{" + ",".join(map(str, values.tolist())) + "}"

@@ -1,7 +1,8 @@
 """Series and models: surrogate ids and per-series settings.
 
 A series first seen in forecasts or actuals is created with its `series:` entry, else
-`series_defaults`; `ingest series` sets frequency, season, time zone, unit and labels. The
+`series_defaults`; `ingest series` sets frequency, season, time zone, unit and labels (a series it
+creates takes its entry first too, its own cells only where the entry is silent). The
 config's entries stay authoritative for series already stored (`sync_series_entries`, at `init`
 and at the start of every cycle), within what the stored data allows. Lookups are by set (one
 query per chunk), never per row.

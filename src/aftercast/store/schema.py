@@ -101,7 +101,10 @@ actual_history = Table(
 
 # Work for the next cycle: (series, period) whose actual or forecasts changed since the last one.
 # kind 0: a forecast targeting the period arrived or changed; kind 1: the actual changed, so
-# pairs issued after it (whose scale it feeds) are rescored too.
+# pairs issued after it (whose scale it feeds) are rescored too; kind 2: a production forecast
+# issued in the period arrived or changed, so the benchmark stage makes the benchmarks its issue
+# time lacks (matching leaves kind 2 alone).
+QUEUE_TARGET, QUEUE_ACTUAL, QUEUE_ISSUE = 0, 1, 2
 match_queue = Table(
     "match_queue",
     metadata,
