@@ -338,7 +338,8 @@ def _parse_jsonl(lines: list[str]) -> pd.DataFrame:
         )
         if len(frame) == len(lines):
             return frame
-    except ValueError:
+    except (ValueError, AttributeError, TypeError):
+        # pandas raises AttributeError for a line of JSON that is not an object (`[1, 2]`).
         pass
     records: list[dict[str, object]] = []
     for line in lines:
