@@ -145,3 +145,14 @@ def test_cycle_refuses_a_clock_before_the_last_completed_cycle(
     assert main(["cycle", "--now", "2026-03-11T00:00:00Z"]) == 0
     with sqlite3.connect(workdir / "aftercast.db") as db:  # the refused one left no cycle row
         assert db.execute("SELECT COUNT(*) FROM cycles").fetchone() == (3,)
+
+
+def test_ingest_says_how_many_rejected_rows_it_did_not_print(
+    workdir: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    rows = [f"s,bad-{i},1" for i in range(7)]
+    path = write_csv(workdir / "a.csv", "series_id,observed_at,value", *rows)
+    assert main(["ingest", "actuals", str(path)]) == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 6 and err[0].startswith(f"rejected: {path} row 1: unparseable")
+    assert err[-1] == f"rejected: 2 more; aftercast quarantine --source {path} lists them"

@@ -95,6 +95,10 @@ def test_level_outside_range_and_horizon_disagreement(
         "level outside (0, 100)": 1,
         "horizon column disagrees with the times": 1,
     }
+    with engine.connect() as connection:
+        reasons = connection.execute(text("SELECT reason FROM quarantine")).scalars().all()
+    # The column's number is quoted as written (5), not as the float it was read into (5.0).
+    assert "horizon column disagrees with the times: column says 5, times give 2" in reasons
 
 
 @pytest.mark.parametrize(

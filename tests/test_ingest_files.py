@@ -319,14 +319,15 @@ def test_a_csv_line_of_white_space_is_blank_not_malformed(
     engine: Engine, config: Config, tmp_path: Path
 ) -> None:
     path = tmp_path / "actuals.csv"
+    blank = "  \t \n\n,,\n"  # white space, an empty line, empty fields: each keeps its place
     path.write_text(
-        "series_id,observed_at,value\ns,2026-01-01,1\n  \t \ns,2026-01-02,x\ns,2026-01-03,3\n  \n",
+        f"series_id,observed_at,value\ns,2026-01-01,1\n{blank}s,2026-01-02,x\ns,2026-01-03,3\n  \n",
         encoding="utf-8",
     )
     report = ingest_path(engine, config, "actuals", path)
     assert (report.accepted, report.rejected) == (2, 1)
-    # Rows as counted before: the third data line is row 3 (the blank one keeps its place).
-    assert _quarantine(engine).values.tolist() == [[3, "value is not a finite number: 'x'"]]
+    # The bad row is row 5, the sixth line of the file, whichever blank lines come before it.
+    assert _quarantine(engine).values.tolist() == [[5, "value is not a finite number: 'x'"]]
 
 
 def test_a_batch_that_cannot_be_read_leaves_no_unfinished_log_row(
@@ -355,3 +356,16 @@ def test_a_batch_that_cannot_be_read_leaves_no_unfinished_log_row(
         log = read_frame(connection, "SELECT source, accepted, finished_at FROM ingest_log")
     assert log[["source", "accepted"]].values.tolist() == [["ok.csv", 1]]
     assert log["finished_at"].notna().all()
+
+
+def test_a_json_line_that_is_valid_json_but_not_an_object_is_that_rows_rejection(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    good = '{"series_id": "s", "observed_at": "2026-01-0%d", "value": %d}'
+    lines = [good % (1, 1), "[1, 2]", "5", good % (2, 2), "null", '"text"']
+    path = tmp_path / "actuals.jsonl"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    report = ingest_path(engine, config, "actuals", path)
+    assert (report.accepted, report.rejected) == (2, 4)
+    assert _quarantine(engine)["row_number"].tolist() == [2, 3, 5, 6]
+    assert report.rejected_reasons == {"not a JSON object": 4}

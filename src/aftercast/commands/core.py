@@ -107,6 +107,12 @@ def cmd_ingest(args: argparse.Namespace) -> int:
 def _print_report(path: Path, report: IngestReport, as_json: bool) -> None:
     for line in report.examples:
         print(f"rejected: {line}", file=sys.stderr)
+    if report.rejected > len(report.examples):
+        more = report.rejected - len(report.examples)
+        print(
+            f"rejected: {more} more; aftercast quarantine --source {path} lists them",
+            file=sys.stderr,
+        )
     if report.ignored_columns:
         print(f"note: {path}: ignored columns {', '.join(report.ignored_columns)}", file=sys.stderr)
     if not as_json:

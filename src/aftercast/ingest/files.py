@@ -165,7 +165,7 @@ class TextBlock:
         return self._positions()[0] + self.first_row
 
     def chunk(self) -> Chunk:
-        frame = self.table.to_pandas()
+        frame = _mark_empty_rows(self.table.to_pandas())
         if not self.malformed:
             return Chunk(frame, self.first_row)
         rows, bad = self._positions()
@@ -194,8 +194,8 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
     malformed: deque[tuple[int, str, str]] = deque()
 
     def set_aside(row: Any) -> str:
-        # The reader counts records from the header's, so the first data row is 2. It skips
-        # empty lines itself; a line of white space alone is as blank, not malformed.
+        # The reader counts records from the header's, so the first data row is 2. A line of
+        # white space alone is as blank, not malformed.
         fields = f"{row.actual_columns} fields, the header has {row.expected_columns}"
         why = BLANK_LINE if not (row.text or "").strip() else f"malformed CSV line: {fields}"
         malformed.append((int(row.number) - 1, why, row.text or ""))
@@ -207,8 +207,9 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
             read_options=arrow_csv.ReadOptions(
                 column_names=names, skip_rows=1, block_size=4 << 20, use_threads=False
             ),
+            # An empty line is a row of empty fields that `_mark_empty_rows` makes blank.
             parse_options=arrow_csv.ParseOptions(
-                invalid_row_handler=set_aside, newlines_in_values=True
+                invalid_row_handler=set_aside, newlines_in_values=True, ignore_empty_lines=False
             ),
             convert_options=arrow_csv.ConvertOptions(
                 column_types={name: pa.string() for name in names}, strings_can_be_null=False
@@ -230,6 +231,14 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
             yield _block(rest, first, malformed, last=True)
     except (pa.ArrowInvalid, UnicodeDecodeError) as exc:
         raise InputFileError(f"{label}: not a readable CSV file ({_first_line(exc)})") from None
+
+
+def _mark_empty_rows(frame: pd.DataFrame) -> pd.DataFrame:
+    """Rows of empty fields alone (an empty line, `,,`) marked `BLANK_LINE`, in their place."""
+    empty = (frame == "").all(axis=1)
+    if frame.empty or not empty.any():
+        return frame
+    return frame.assign(**{PRE_REJECTED: empty.map({True: BLANK_LINE, False: None})})
 
 
 def _line_raw(text: str) -> str:
@@ -338,7 +347,8 @@ def _parse_jsonl(lines: list[str]) -> pd.DataFrame:
         )
         if len(frame) == len(lines):
             return frame
-    except ValueError:
+    except (ValueError, AttributeError, TypeError):
+        # pandas raises AttributeError for a line of JSON that is not an object (`[1, 2]`).
         pass
     records: list[dict[str, object]] = []
     for line in lines:

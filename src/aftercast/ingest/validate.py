@@ -230,7 +230,7 @@ def check_forecasts(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame)
         reasons.flag(
             disagree,
             "horizon column disagrees with the times: column says "
-            + given.astype("string").fillna("")
+            + given.where(disagree).map(_number_text, na_action="ignore").fillna("")
             + ", times give "
             + horizon.astype("string"),
         )
@@ -346,3 +346,8 @@ def check_actuals(frame: pd.DataFrame, first_row: int, settings: pd.DataFrame) -
         good, ["series_key", "period"], ["value", "observed_at"], reasons, first_row
     )
     return _package(frame, reasons, first_row, good, repeats)
+
+
+def _number_text(value: float) -> str:
+    """A number as a reason quotes it: a whole number as its integer text (`3`, not `3.0`)."""
+    return str(int(value)) if float(value).is_integer() else repr(float(value))
