@@ -95,3 +95,31 @@ def test_agg_backend_even_when_the_environment_asks_for_a_display() -> None:
         check=True,
     )
     assert result.stdout.strip().lower() == "agg"
+
+
+@pytest.mark.parametrize("days", [1, 2, 4, 5, 9, 30, 400])
+def test_time_axis_is_labelled_without_falling_back(days: int) -> None:
+    """Spans of a few days left matplotlib's date locator (default: at least 5 ticks) with no
+    interval to choose: it warned and fell back to a tick every 12 hours. Every span, a single
+    day included, gets ticks of its own choosing, the warning turned into an error here."""
+    import dataclasses
+    import warnings
+
+    times = [f"2026-07-{d:02d}T00:00:00Z" for d in range(1, min(days, 28) + 1)]
+    if days > 28:  # a longer span with the same few points
+        times = [times[0], f"{2026 + days // 365}-0{1 + days % 365 // 60}-15T00:00:00Z"]
+    n = len(times)
+    one = dataclasses.replace(
+        chart(),
+        times=times,
+        actual=[10.0 + i for i in range(n)],
+        point=[10.0] * n,
+        lower=[8.0] * n,
+        upper=[12.0] * n,
+        coverage_times=times,
+        coverage=[1.0] * n,
+    )
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", UserWarning)
+        svg = render_band_chart_svg(one)
+    assert ET.fromstring(svg).tag == f"{SVG_NS}svg"

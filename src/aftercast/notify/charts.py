@@ -123,6 +123,19 @@ def _draw_coverage(ax: Axes, chart: ChartData) -> None:
     ax.legend(loc="lower left", fontsize=FONT_SIZE - 1, frameon=False, ncol=2)
 
 
+def date_axis(ax: Axes) -> None:
+    """Concise date ticks, 3 to 6 of them. The locator's default of at least 5 ticks cannot
+    divide spans such as 4 days (fewer than 5 day ticks, too many hour ticks for 6), so it
+    warned and fell back to one tick every 12 hours. Data at one instant alone is shown with a
+    day either side rather than the years matplotlib would widen it to."""
+    low, high = ax.dataLim.intervalx
+    if np.isfinite(low) and high - low < 1.0:  # matplotlib's date unit is the day
+        ax.set_xlim(low - 1.0, high + 1.0)
+    locator = AutoDateLocator(minticks=3, maxticks=6)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
+
+
 def _figure(chart: ChartData) -> Figure:
     fig = Figure(figsize=FIGURE_INCHES, dpi=DPI, layout="constrained")
     FigureCanvasAgg(fig)
@@ -133,9 +146,7 @@ def _figure(chart: ChartData) -> Figure:
     has_times = bool(chart.times or chart.coverage_times)
     for ax in (band_ax, coverage_ax):
         if has_times:
-            locator = AutoDateLocator(maxticks=6)
-            ax.xaxis.set_major_locator(locator)
-            ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
+            date_axis(ax)
         else:
             ax.xaxis.set_major_locator(NullLocator())  # a date axis over nothing would show 1970
         ax.tick_params(labelsize=FONT_SIZE)

@@ -16,12 +16,11 @@ import numpy as np
 import pandas as pd
 from matplotlib.axes import Axes
 from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
 from matplotlib.figure import Figure
 
 from aftercast.config import WindowConfig
 from aftercast.notify.base import ChartData
-from aftercast.notify.charts import BLUE, GREY, VERMILLION, render_band_chart_svg
+from aftercast.notify.charts import BLUE, GREY, VERMILLION, date_axis, render_band_chart_svg
 from aftercast.periods import to_iso
 from aftercast.web.pit import PitHistogram
 
@@ -136,9 +135,7 @@ def rolling_error_chart(
             parse_math=False,
         )
     else:
-        locator = AutoDateLocator(maxticks=6)
-        ax.xaxis.set_major_locator(locator)
-        ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
+        date_axis(ax)
     ax.set_ylabel("rolling MAE", fontsize=FONT_SIZE)
     ax.legend(loc="upper left", fontsize=FONT_SIZE - 1, frameon=False, ncol=2)
     ax.margins(y=0.2)
