@@ -121,3 +121,19 @@ def test_the_upgrade_stores_the_current_alias_of_each_stored_frequency(
         )
     migrate(engine)
     assert _stored(engine) == {"a": "D", "b": "h", "c": "ME"}
+
+
+def test_the_downgrade_writes_back_the_aliases_the_earlier_version_counts_in(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    from alembic import command
+
+    from aftercast.store.db import _alembic_config
+
+    rows = ["a,ME", "b,QE-JAN", "c,YE-DEC", "d,2ME", "e,h", "f,MS", "g,W-SUN"]
+    path = write_csv(tmp_path / "s.csv", "series_id,frequency", *rows)
+    assert ingest_path(engine, config, "series", path).accepted == 7
+    with write(engine) as connection:
+        command.downgrade(_alembic_config(connection), "0011_current_frequencies@-1")
+    old = {"a": "M", "b": "Q-JAN", "c": "Y-DEC", "d": "2M", "e": "h", "f": "MS", "g": "W-SUN"}
+    assert _stored(engine) == old
