@@ -49,8 +49,7 @@ class SeriesDefaults(Strict):
     def _known_frequency(cls, value: str) -> str:
         from aftercast.periods import check_frequency
 
-        check_frequency(value)
-        return value
+        return check_frequency(value)
 
     @field_validator("timezone")
     @classmethod
@@ -76,9 +75,7 @@ class SeriesEntry(Strict):
     def _known_frequency(cls, value: str | None) -> str | None:
         from aftercast.periods import check_frequency
 
-        if value is not None:
-            check_frequency(value)
-        return value
+        return None if value is None else check_frequency(value)
 
     @field_validator("timezone")
     @classmethod

@@ -10,6 +10,7 @@ A period is an integer ordinal: horizons are differences of ordinals and pairs m
 from __future__ import annotations
 
 import re
+import warnings
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 import numpy as np
@@ -20,19 +21,31 @@ _OFFSET_SUFFIX = re.compile(r"[T ]\d{2}(?::?\d{2}){0,2}(?:[.,]\d+)?\s*(?:Z|[+-]\
 _DAY_SECONDS = 86_400
 
 
-def check_frequency(freq: str) -> None:
-    """Raise ValueError unless `freq` is a pandas offset alias aftercast can count periods in."""
-    try:
-        offset = to_offset(freq)
-    except (ValueError, TypeError):
-        raise ValueError(
-            f"{freq!r} is not a pandas offset alias such as 'h', 'D', 'W', 'MS'"
-        ) from None
-    if _tick_seconds(freq) is None:
+def check_frequency(freq: str) -> str:
+    """The alias aftercast stores for `freq`; ValueError unless it can count periods in it.
+
+    An alias pandas deprecated ('A', 'Y', 'Q', 'M', 'H', 'T', 'S', ...) becomes the one pandas
+    names now ('YE-DEC', 'QE-DEC', 'ME', 'h', 'min', 's', ...), which counts the same periods,
+    so a store never holds an alias a later pandas no longer reads.
+
+    >>> check_frequency("A"), check_frequency("15T"), check_frequency("MS")
+    ('YE-DEC', '15min', 'MS')
+    """
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", FutureWarning)
         try:
-            pd.Period("2026-01-01", freq=_period_alias(freq))
+            offset = to_offset(freq)
+        except (ValueError, TypeError):
+            raise ValueError(
+                f"{freq!r} is not a pandas offset alias such as 'h', 'D', 'W', 'MS'"
+            ) from None
+    current = offset.freqstr if any(w.category is FutureWarning for w in caught) else freq
+    if _tick_seconds(current) is None and not _business_days(current):
+        try:
+            pd.Period("2026-01-01", freq=_period_alias(current))
         except (ValueError, TypeError):
             raise ValueError(f"frequency {freq!r} ({offset}) has no calendar period") from None
+    return current
 
 
 def check_timezone(name: str) -> None:
@@ -54,15 +67,25 @@ def _tick_seconds(freq: str) -> int | None:
     return seconds if 0 < seconds < _DAY_SECONDS or seconds % _DAY_SECONDS else None
 
 
+def _business_days(freq: str) -> bool:
+    """Whether `freq` counts business days ('B', '2B'), which a Period no longer should."""
+    return type(to_offset(freq)) is pd.offsets.BusinessDay
+
+
 def _period_alias(freq: str) -> str:
-    """Period frequency for an offset alias: month/quarter/year starts count as their period."""
+    """Period frequency for an offset alias: a month, quarter or year by its start or its end
+    ('MS', 'ME', 'QE-JAN', 'YE') counts as that period."""
     offset = to_offset(freq)
-    if isinstance(offset, pd.offsets.MonthBegin):
+    if isinstance(offset, (pd.offsets.MonthBegin, pd.offsets.MonthEnd)):
         return f"{offset.n}M"
     if isinstance(offset, pd.offsets.QuarterBegin):
         return f"{offset.n}Q"
+    if isinstance(offset, pd.offsets.QuarterEnd):
+        return f"{offset.n}Q-{offset.rule_code.partition('-')[2]}"  # QE-JAN: Q-JAN
     if isinstance(offset, pd.offsets.YearBegin):
         return f"{offset.n}Y"
+    if isinstance(offset, pd.offsets.YearEnd):
+        return f"{offset.n}Y-{offset.rule_code.partition('-')[2]}"
     return freq
 
 
@@ -77,6 +100,10 @@ def period_ordinals(epoch_seconds: np.ndarray, freq: str, timezone: str) -> np.n
     if tick is not None:
         return np.floor_divide(seconds, tick)
     local = pd.to_datetime(seconds, unit="s", utc=True).tz_convert(timezone).tz_localize(None)
+    if _business_days(freq):  # pandas' ordinals, without its deprecated Period('B')
+        days = local.normalize().to_numpy().astype("datetime64[D]")
+        monday_on = np.busday_offset(days, 0, roll="forward")  # a weekend counts as Monday
+        return np.busday_count(np.datetime64("1970-01-01", "D"), monday_on).astype(np.int64)
     return np.asarray(local.to_period(_period_alias(freq)).asi8, dtype=np.int64)
 
 

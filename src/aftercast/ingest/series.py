@@ -36,12 +36,19 @@ from aftercast.store.catalog import series_settings
 COLUMNS = ["series_id", "frequency", "season", "timezone", "unit"]
 
 
-def _check_values(values: pd.Series, check: object, reasons: Reasons, column: str) -> None:
+def _check_values(values: pd.Series, check: object, reasons: Reasons, column: str) -> pd.Series:
+    """Flag the rows whose value `check` refuses; the values with what it returns put in (the
+    current alias of a frequency)."""
+    out = values.copy()
     for value in values.dropna().unique():  # distinct values, a handful per file
         try:
-            check(value)  # type: ignore[operator]
+            current = check(value)  # type: ignore[operator]
         except ValueError as exc:
             reasons.flag(values == value, f"bad {column}: {exc}")
+        else:
+            if isinstance(current, str):
+                out[(values == value).fillna(False)] = current
+    return out
 
 
 def check_label_columns(columns: pd.Index, source: str) -> None:
@@ -126,7 +133,7 @@ def check(frame: pd.DataFrame, first_row: int) -> Checked:
             good[column] = frame[column].astype("string").str.strip().replace("", pd.NA)
             flag_nul(good[column], column, reasons)
     if "frequency" in good:
-        _check_values(good["frequency"], check_frequency, reasons, "frequency")
+        good["frequency"] = _check_values(good["frequency"], check_frequency, reasons, "frequency")
     if "timezone" in good:
         _check_values(good["timezone"], check_timezone, reasons, "timezone")
     if "season" in frame.columns:
