@@ -9,11 +9,12 @@ changes nothing. Expected values are the input rows themselves, counted by hand.
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import pandas as pd
 import pytest
-from sqlalchemy import Engine
+from sqlalchemy import Engine, event
 
 from aftercast.config import MAX_SEASON, Config
 from aftercast.errors import InputFileError
@@ -177,3 +178,44 @@ def test_a_series_file_sets_only_its_label_columns_and_an_empty_cell_removes_one
     }
     again = ingest_path(engine, config, "series", edits)
     assert (again.accepted, again.revised, again.unchanged) == (0, 0, 3)
+
+
+def test_moving_periods_is_refused_for_actuals_or_forecasts_found_series_by_series(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    """The same check as the config's entries: a series holding actuals (a) or only forecasts (b)
+    keeps its periods; one holding nothing (c) moves. The stored data is probed per series the
+    file moves, never read whole (every statement on actuals or forecasts names its series)."""
+    start = ["a,D,7,,x", "b,D,7,,x", "c,D,7,,x"]
+    first = ingest_path(engine, config, "series", write_csv(tmp_path / "s.csv", HEADER, *start))
+    assert first.accepted == 3
+    ingest_path(
+        engine,
+        config,
+        "actuals",
+        write_csv(tmp_path / "a.csv", "series_id,observed_at,value", "a,2026-01-01,1"),
+    )
+    ingest_path(
+        engine,
+        config,
+        "forecasts",
+        write_csv(
+            tmp_path / "f.csv",
+            "series_id,model,issued_at,target_at,point",
+            "b,m,2026-01-01,2026-01-02,1",
+        ),
+    )
+    statements: list[str] = []
+    listen = (engine, "before_cursor_execute")
+    seen = lambda *args: statements.append(args[2])  # noqa: E731
+    event.listen(*listen, seen)
+    moved = ["a,h,24,,x", "b,h,24,,x", "c,h,24,,x"]
+    report = ingest_path(engine, config, "series", write_csv(tmp_path / "m.csv", HEADER, *moved))
+    event.remove(*listen, seen)
+    reason = "frequency, timezone or season cannot change once the series holds data"
+    assert (report.rejected, report.revised) == (2, 1)
+    assert _quarantine(engine) == [(1, reason), (2, reason)]
+    stored = _series(engine)
+    assert list(stored["frequency"]) == ["D", "D", "h"]
+    reads = [s for s in statements if re.search(r"\bFROM (actuals|forecasts)\b", s)]
+    assert reads and all(re.search(r"\.series_id = s\.id\b", s) for s in reads), reads

@@ -10,7 +10,6 @@ one line naming the file.
 from __future__ import annotations
 
 import codecs
-import csv
 import hashlib
 import io
 import json
@@ -25,6 +24,7 @@ import numpy as np
 import pandas as pd
 
 from aftercast.errors import InputFileError
+from aftercast.ingest.csv_rows import UNCLOSED_QUOTE, csv_header, open_quote_line, with_last
 
 FORMATS = {
     ".csv": "csv",
@@ -185,7 +185,7 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
     import pyarrow as pa
     from pyarrow import csv as arrow_csv
 
-    names = [name.lstrip(" ") for name in _csv_header(source, label)]
+    names = [name.lstrip(" ") for name in csv_header(source, label)]
     twice = sorted({name for name in names if names.count(name) > 1})
     if twice:  # which of the two would hold the value? The file must say.
         raise InputFileError(
@@ -218,7 +218,13 @@ def csv_blocks(source: Path | IO[bytes], chunk_rows: int, label: str) -> Iterato
         # Rows stay Arrow batches until a chunk is full.
         held: list[Any] = []
         first = 1
-        for batch in reader:
+        for batch, last in with_last(reader):
+            if last:  # a quote its last field opens and never closes: a malformed line
+                rows = sum(b.num_rows for b in held) + batch.num_rows + len(malformed)
+                line = open_quote_line(source, batch, first + rows - 1, label)
+                if line is not None:
+                    batch = batch.slice(0, batch.num_rows - 1)
+                    malformed.append((first + rows - 1, UNCLOSED_QUOTE, line))
             held.append(_trimmed(batch))
             while sum(b.num_rows for b in held) >= chunk_rows:
                 table = pa.Table.from_batches(held)
@@ -258,21 +264,6 @@ def _block(
         placed.append(malformed.popleft())
         end += 1  # each malformed line pushes the block's last row one further
     return TextBlock(table, first, placed)
-
-
-def _csv_header(source: Path | IO[bytes], label: str) -> list[str]:
-    """The header row's names (a BOM dropped); the source is left at its start."""
-    if isinstance(source, Path):
-        with source.open("rb") as handle:
-            line = handle.readline()
-    else:
-        start = source.tell()
-        line = source.readline()
-        source.seek(start)
-    text = line.decode("utf-8", errors="replace").lstrip("\ufeff").rstrip("\r\n")
-    if not text.strip():
-        raise InputFileError(f"{label}: the file has no header row")
-    return next(csv.reader([text]))
 
 
 def _trimmed(batch: Any) -> Any:

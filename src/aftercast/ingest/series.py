@@ -30,8 +30,8 @@ from aftercast.ingest.load import Written
 from aftercast.ingest.validate import Checked, _conflicts, _package
 from aftercast.periods import check_frequency, check_timezone
 from aftercast.store import schema
-from aftercast.store.bulk import insert_new, read_frame
-from aftercast.store.catalog import series_settings
+from aftercast.store.bulk import insert_new
+from aftercast.store.catalog import holding_data, series_settings
 
 COLUMNS = ["series_id", "frequency", "season", "timezone", "unit"]
 
@@ -247,11 +247,8 @@ def _refuse_period_changes(
     if not moved.any():
         return
     ids = stored.loc[moved[moved].index, "id"].astype("int64")
-    with_data = read_frame(
-        connection,
-        "SELECT DISTINCT series_id FROM actuals UNION SELECT DISTINCT series_id FROM forecasts",
-    )
-    blocked = ids[ids.isin(with_data["series_id"])].index
+    held = holding_data(connection, ids.tolist())
+    blocked = ids[ids.isin(list(held))].index
     if len(blocked):
         numbers = checked.good.reset_index().set_index("key").loc[blocked]
         extra = pd.DataFrame(

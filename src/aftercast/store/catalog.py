@@ -15,12 +15,13 @@ import time
 from collections.abc import Iterable
 from typing import Any
 
+import numpy as np
 import pandas as pd
-from sqlalchemy import Connection, Engine, bindparam, select, text
+from sqlalchemy import Connection, Engine, select, text
 
 from aftercast.config import Config, SeriesEntry
 from aftercast.store import schema
-from aftercast.store.bulk import insert_new, read_frame
+from aftercast.store.bulk import id_condition, insert_new, read_frame
 from aftercast.store.db import write
 
 SETTINGS = ["frequency", "season", "timezone", "unit"]
@@ -148,7 +149,7 @@ def _apply_entries(connection: Connection, config: Config, now: int) -> list[str
         return []
     rows = {str(k): _plain(r) for k, r in stored.to_dict("index").items()}
     moves = {key: _period_moves(entries[key][1], row) for key, row in rows.items()}
-    held = _holding_data(connection, [rows[key]["id"] for key, move in moves.items() if move])
+    held = holding_data(connection, [rows[key]["id"] for key, move in moves.items() if move])
     warnings, updates = [], []
     for key, row in rows.items():
         index, entry = entries[key]
@@ -193,13 +194,18 @@ def _period_moves(entry: SeriesEntry, row: dict[str, Any]) -> dict[str, Any]:
     return {k: v for k, v in wanted.items() if v is not None and v != row[k]}
 
 
-def _holding_data(connection: Connection, ids: list[int]) -> set[int]:
-    """Those of `ids` whose series hold forecasts or actuals (one indexed probe each)."""
+def holding_data(connection: Connection, ids: list[int]) -> set[int]:
+    """Those of `ids` whose series hold forecasts or actuals (one indexed probe each).
+
+    The one check of both the config's entries and `ingest series`: the ids come as one array
+    (or staged table), so a series file's chunk of any size fits in one statement.
+    """
     if not ids:
         return set()
+    condition, params = id_condition(connection, "s.id", np.asarray(ids), "held_series")
     query = text(
-        "SELECT s.id FROM series s WHERE s.id IN :ids AND ("
+        f"SELECT s.id FROM series s WHERE {condition} AND ("
         "EXISTS (SELECT 1 FROM forecasts f WHERE f.series_id = s.id) OR "
         "EXISTS (SELECT 1 FROM actuals a WHERE a.series_id = s.id))"
-    ).bindparams(bindparam("ids", expanding=True))
-    return {int(i) for i in connection.execute(query, {"ids": ids}).scalars()}
+    )
+    return {int(i) for i in connection.execute(query, params).scalars()}
