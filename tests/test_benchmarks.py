@@ -317,3 +317,39 @@ def test_a_model_backfilled_behind_the_daily_one_gets_its_benchmarks_once(
     assert cycle_on(engine, config, small, 12).benchmarks == 0
     assert made == []
     pd.testing.assert_frame_equal(_benchmark_rows(engine), expected)
+
+
+def _activity(engine: Engine) -> pd.DataFrame:
+    with engine.connect() as connection:
+        return read_frame(
+            connection,
+            "SELECT s.key, m.name, a.first_issued_at, a.last_issued_at, a.last_issue_period "
+            "FROM forecast_activity a JOIN series s ON s.id = a.series_id "
+            "JOIN models m ON m.id = a.model_id ORDER BY 1, 2",
+        )
+
+
+def test_activity_is_kept_the_same_with_no_benchmark_methods(
+    config: Config, engine: Engine, small: Scenario, tmp_path: Path
+) -> None:
+    """With no methods the stage only aggregates the queued forecasts' activity in the store;
+    the rows equal those kept while benchmarks are made, day by day and with a late backfill."""
+    bare_url = f"sqlite:///{tmp_path / 'bare.db'}"
+    bare = make_engine(bare_url)
+    migrate(bare)
+    bare_config = make_config(bare_url, benchmarks={"methods": []})
+    late = small.forecasts["issued_at"] < day_start(small, 4)
+    backfill = replace(small, forecasts=small.forecasts.loc[late])
+    daily = replace(small, forecasts=small.forecasts.loc[~late])
+    for store, settings in ((engine, config), (bare, bare_config)):
+        load_through(store, settings, replace(daily, forecasts=daily.forecasts.iloc[:0]), -1)
+        for day in range(8):
+            feed_day(store, settings, daily, day)
+            cycle_on(store, settings, small, day)
+        load_through(store, settings, replace(backfill, actuals=backfill.actuals.iloc[:0]), 7)
+        cycle_on(store, settings, small, 8)
+    expected = _activity(engine)
+    assert len(expected) == small.forecasts[["series_id", "model"]].drop_duplicates().shape[0]
+    assert (expected["first_issued_at"] < day_start(small, 4).timestamp()).all()  # backfill
+    pd.testing.assert_frame_equal(_activity(bare), expected)
+    bare.dispose()

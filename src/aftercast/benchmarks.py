@@ -134,13 +134,51 @@ def _fresh_forecasts(connection: Connection, series_ids: np.ndarray) -> _Fresh:
     )
 
 
-def record_activity(connection: Connection, fresh: pd.DataFrame) -> None:
-    """Merge first/last issue per (series, model) of `fresh` forecasts into forecast_activity."""
-    seen = fresh.groupby(["series_id", "model_id"], as_index=False).agg(
+def activity_of(fresh: pd.DataFrame) -> pd.DataFrame:
+    """First and last issue per (series, model) of `fresh` forecasts."""
+    return fresh.groupby(["series_id", "model_id"], as_index=False).agg(
         first_issued_at=("issued_at", "min"),
         last_issued_at=("issued_at", "max"),
         last_issue_period=("issue_period", "max"),
     )
+
+
+def _queued_activity(connection: Connection, series_ids: np.ndarray) -> pd.DataFrame:
+    """The activity of the queued issue periods' production forecasts; consumes their queue.
+
+    With no benchmark methods configured the stage only keeps `forecast_activity` current, so
+    the database aggregates the forecasts instead of sending every one of them back.
+    """
+    staged_series = stage_keys(connection, "bm_series", pd.DataFrame({"series_id": series_ids}))
+    issues = read_frame(
+        connection,
+        f"SELECT q.series_id, q.period FROM match_queue q JOIN {staged_series} s "
+        f"ON s.series_id = q.series_id WHERE q.kind = {schema.QUEUE_ISSUE}",
+    )
+    queued_issues, params = key_rows(connection, "q", issues)
+    seen = read_frame(
+        connection,
+        "SELECT f.series_id, f.model_id, MIN(f.issued_at) AS first_issued_at, "
+        "MAX(f.issued_at) AS last_issued_at, MAX(f.issue_period) AS last_issue_period "
+        f"FROM {queued_issues} CROSS JOIN forecasts f JOIN models m ON m.id = f.model_id "
+        "WHERE f.series_id = q.series_id AND f.issue_period = q.period "
+        "AND m.name NOT LIKE :prefix GROUP BY f.series_id, f.model_id",
+        {"prefix": f"{BENCHMARK_PREFIX}%", **params},
+    )
+    connection.execute(
+        text(
+            "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
+            f"(SELECT q.series_id, q.period, {schema.QUEUE_ISSUE} FROM {queued_issues})"
+        ),
+        params,
+    )
+    return seen
+
+
+def record_activity(connection: Connection, seen: pd.DataFrame) -> None:
+    """Merge first/last issue per (series, model), as `activity_of` gives, into forecast_activity."""
+    if seen.empty:
+        return
     staged = stage_keys(connection, "bm_activity", seen[["series_id", "model_id"]])
     stored = read_frame(
         connection,
@@ -248,15 +286,16 @@ def _store(connection: Connection, made: pd.DataFrame, intervals: pd.DataFrame) 
 def _benchmark_batch(
     connection: Connection, config: Config, series_ids: np.ndarray
 ) -> BenchmarkStats:
-    fresh = _fresh_forecasts(connection, series_ids)
     stats = BenchmarkStats(series=len(series_ids))
+    methods = benchmark_methods_in_use(config)
+    if not methods:
+        record_activity(connection, _queued_activity(connection, series_ids))
+        return stats
+    fresh = _fresh_forecasts(connection, series_ids)
     production = fresh.production()
     if production.empty:
         return stats
-    record_activity(connection, production)
-    methods = benchmark_methods_in_use(config)
-    if not methods:
-        return stats
+    record_activity(connection, activity_of(production))
     model_ids = ensure_models(connection, [benchmark_methods.model_name(m) for m in methods])
     by_name = {m: model_ids[benchmark_methods.model_name(m)] for m in methods}
     missing = _requests(fresh, by_name)
