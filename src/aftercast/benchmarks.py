@@ -176,7 +176,7 @@ def _queued_activity(connection: Connection, series_ids: np.ndarray) -> pd.DataF
 
 
 def record_activity(connection: Connection, seen: pd.DataFrame) -> None:
-    """Merge first/last issue per (series, model), as `activity_of` gives, into forecast_activity."""
+    """Merge first/last issue per (series, model), as `activity_of` gives, into the table."""
     if seen.empty:
         return
     staged = stage_keys(connection, "bm_activity", seen[["series_id", "model_id"]])
