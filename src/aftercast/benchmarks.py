@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -74,6 +75,30 @@ class _Fresh:
         return both.drop_duplicates(["series_id", "model_id", "issued_at", "target_at"])
 
 
+def _queued_issues(
+    connection: Connection, series_ids: np.ndarray
+) -> tuple[str, str, dict[str, Any]]:
+    """The staged `series_ids`, and their queued issue periods as key rows `q`."""
+    staged_series = stage_keys(connection, "bm_series", pd.DataFrame({"series_id": series_ids}))
+    issues = read_frame(
+        connection,
+        f"SELECT q.series_id, q.period FROM match_queue q JOIN {staged_series} s "
+        f"ON s.series_id = q.series_id WHERE q.kind = {schema.QUEUE_ISSUE}",
+    )
+    queued_issues, params = key_rows(connection, "q", issues)
+    return staged_series, queued_issues, params
+
+
+def _consume_issues(connection: Connection, queued_issues: str, params: dict[str, Any]) -> None:
+    connection.execute(
+        text(
+            "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
+            f"(SELECT q.series_id, q.period, {schema.QUEUE_ISSUE} FROM {queued_issues})"
+        ),
+        params,
+    )
+
+
 def _fresh_forecasts(connection: Connection, series_ids: np.ndarray) -> _Fresh:
     """The forecasts whose benchmarks are missing or may have changed; consumes their queue.
 
@@ -83,13 +108,7 @@ def _fresh_forecasts(connection: Connection, series_ids: np.ndarray) -> _Fresh:
     arrived or changed since the last cycle (their benchmarks knew less, or another value, when
     they were made).
     """
-    staged_series = stage_keys(connection, "bm_series", pd.DataFrame({"series_id": series_ids}))
-    issues = read_frame(
-        connection,
-        f"SELECT q.series_id, q.period FROM match_queue q JOIN {staged_series} s "
-        f"ON s.series_id = q.series_id WHERE q.kind = {schema.QUEUE_ISSUE}",
-    )
-    queued_issues, params = key_rows(connection, "q", issues)
+    staged_series, queued_issues, params = _queued_issues(connection, series_ids)
     queued = read_frame(
         connection,
         f"SELECT {_FORECAST_COLUMNS}, CASE WHEN m.name LIKE :prefix THEN 1 ELSE 0 END AS made "
@@ -119,13 +138,7 @@ def _fresh_forecasts(connection: Connection, series_ids: np.ndarray) -> _Fresh:
             **since_params,
         },
     )
-    connection.execute(
-        text(
-            "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
-            f"(SELECT q.series_id, q.period, {schema.QUEUE_ISSUE} FROM {queued_issues})"
-        ),
-        params,
-    )
+    _consume_issues(connection, queued_issues, params)
     made = queued["made"] == 1
     return _Fresh(
         queued=queued.loc[~made].drop(columns="made"),
@@ -149,13 +162,7 @@ def _queued_activity(connection: Connection, series_ids: np.ndarray) -> pd.DataF
     With no benchmark methods configured the stage only keeps `forecast_activity` current, so
     the database aggregates the forecasts instead of sending every one of them back.
     """
-    staged_series = stage_keys(connection, "bm_series", pd.DataFrame({"series_id": series_ids}))
-    issues = read_frame(
-        connection,
-        f"SELECT q.series_id, q.period FROM match_queue q JOIN {staged_series} s "
-        f"ON s.series_id = q.series_id WHERE q.kind = {schema.QUEUE_ISSUE}",
-    )
-    queued_issues, params = key_rows(connection, "q", issues)
+    _, queued_issues, params = _queued_issues(connection, series_ids)
     seen = read_frame(
         connection,
         "SELECT f.series_id, f.model_id, MIN(f.issued_at) AS first_issued_at, "
@@ -165,13 +172,7 @@ def _queued_activity(connection: Connection, series_ids: np.ndarray) -> pd.DataF
         "AND m.name NOT LIKE :prefix GROUP BY f.series_id, f.model_id",
         {"prefix": f"{BENCHMARK_PREFIX}%", **params},
     )
-    connection.execute(
-        text(
-            "DELETE FROM match_queue WHERE (series_id, period, kind) IN "
-            f"(SELECT q.series_id, q.period, {schema.QUEUE_ISSUE} FROM {queued_issues})"
-        ),
-        params,
-    )
+    _consume_issues(connection, queued_issues, params)
     return seen
 
 
