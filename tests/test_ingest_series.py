@@ -219,3 +219,27 @@ def test_moving_periods_is_refused_for_actuals_or_forecasts_found_series_by_seri
     assert list(stored["frequency"]) == ["D", "D", "h"]
     reads = [s for s in statements if re.search(r"\bFROM (actuals|forecasts)\b", s)]
     assert reads and all(re.search(r"\.series_id = s\.id\b", s) for s in reads), reads
+
+
+def test_label_booleans_are_stored_as_json_writes_them(
+    engine: Engine, config: Config, tmp_path: Path
+) -> None:
+    from aftercast.ingest import ingest_records
+
+    # JSON's literals are `true` and `false` (RFC 8259, section 3); Python's str() would
+    # store "True". A column of booleans only, and one mixed with text and a null.
+    pushed = [
+        {"series_id": "a", "label_critical": True, "label_note": "x"},
+        {"series_id": "b", "label_critical": False, "label_note": True},
+    ]
+    assert ingest_records(engine, config, "series", pushed, "POST /v1/series").accepted == 2
+    lines = ['{"series_id": "c", "label_pilot": true}', '{"series_id": "d", "label_pilot": null}']
+    path = tmp_path / "s.jsonl"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    assert ingest_path(engine, config, "series", path).accepted == 2
+    assert _labels(engine) == {
+        "a": {"critical": "true", "note": "x"},
+        "b": {"critical": "false", "note": "true"},
+        "c": {"pilot": "true"},
+        "d": {},
+    }

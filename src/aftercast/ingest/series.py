@@ -91,17 +91,29 @@ def _labels(frame: pd.DataFrame) -> pd.Series | str:
 
 
 def _numbers_as_written(cells: pd.Series) -> pd.Series:
-    """A JSON label given as a number, as it was written: a whole number as its integer text.
+    """A JSON label given as a number or a boolean, as it was written: a whole number as its
+    integer text, `true` and `false` in lower case.
 
     A JSON column of numbers with a null among them is read as floats, which would store 5 as
-    "5.0". Text cells (all of a CSV file's) are left exactly as they are.
+    "5.0", and a boolean would be stored as Python's "True". Text cells (all of a CSV file's)
+    are left exactly as they are.
 
-    >>> _numbers_as_written(pd.Series([5.0, None, 2.5, "7.0"], dtype=object)).tolist()
-    ['5', None, 2.5, '7.0']
+    >>> _numbers_as_written(pd.Series([5.0, None, 2.5, "7.0", True], dtype=object)).tolist()
+    ['5', None, 2.5, '7.0', 'true']
+    >>> _numbers_as_written(pd.Series([False, True])).tolist()
+    ['false', 'true']
     """
-    if cells.dtype.kind not in "fO":
+    if cells.dtype.kind not in "fOb":
         return cells
-    return cells.map(lambda v: str(int(v)) if isinstance(v, float) and v.is_integer() else v)
+    return cells.map(_as_written)
+
+
+def _as_written(value: object) -> object:
+    if isinstance(value, bool | np.bool_):
+        return "true" if value else "false"
+    if isinstance(value, float) and value.is_integer():
+        return str(int(value))
+    return value
 
 
 def _empty(value: object) -> bool:
