@@ -123,22 +123,34 @@ def test_ingesting_a_series_file_again_changes_nothing(
     assert _labels(engine)["b"] == {"region": "north"}  # no label_region column: region stays
 
 
+def _pushed_and_from_lines(
+    engine: Engine,
+    config: Config,
+    folder: Path,
+    pushed: list[dict[str, object]],
+    lines: list[str],
+) -> tuple[int, int]:
+    """Rows accepted from `pushed` records (as the API ingests them), then from a JSON Lines
+    file of `lines`."""
+    from aftercast.ingest import ingest_records
+
+    by_api = ingest_records(engine, config, "series", pushed, "POST /v1/series").accepted
+    path = folder / "s.jsonl"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    return by_api, ingest_path(engine, config, "series", path).accepted
+
+
 def test_label_numbers_are_stored_as_written_pushed_or_in_json_lines(
     engine: Engine, config: Config, tmp_path: Path
 ) -> None:
-    from aftercast.ingest import ingest_records
-
     # A null in the column makes pandas read its numbers as floats; 5 must not become "5.0".
     pushed = [
         {"series_id": "a", "label_store": 5, "label_ratio": 1.5},
         {"series_id": "b", "label_store": None, "label_ratio": None},
         {"series_id": "c", "label_store": "0017", "label_ratio": 2},
     ]
-    assert ingest_records(engine, config, "series", pushed, "POST /v1/series").accepted == 3
     lines = ['{"series_id": "d", "label_shelf": 12}', '{"series_id": "e", "label_shelf": null}']
-    path = tmp_path / "s.jsonl"
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    assert ingest_path(engine, config, "series", path).accepted == 2
+    assert _pushed_and_from_lines(engine, config, tmp_path, pushed, lines) == (3, 2)
     assert _labels(engine) == {
         "a": {"store": "5", "ratio": "1.5"},
         "b": {},
@@ -224,19 +236,14 @@ def test_moving_periods_is_refused_for_actuals_or_forecasts_found_series_by_seri
 def test_label_booleans_are_stored_as_json_writes_them(
     engine: Engine, config: Config, tmp_path: Path
 ) -> None:
-    from aftercast.ingest import ingest_records
-
     # JSON's literals are `true` and `false` (RFC 8259, section 3); Python's str() would
     # store "True". A column of booleans only, and one mixed with text and a null.
     pushed = [
         {"series_id": "a", "label_critical": True, "label_note": "x"},
         {"series_id": "b", "label_critical": False, "label_note": True},
     ]
-    assert ingest_records(engine, config, "series", pushed, "POST /v1/series").accepted == 2
     lines = ['{"series_id": "c", "label_pilot": true}', '{"series_id": "d", "label_pilot": null}']
-    path = tmp_path / "s.jsonl"
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
-    assert ingest_path(engine, config, "series", path).accepted == 2
+    assert _pushed_and_from_lines(engine, config, tmp_path, pushed, lines) == (2, 2)
     assert _labels(engine) == {
         "a": {"critical": "true", "note": "x"},
         "b": {"critical": "false", "note": "true"},
