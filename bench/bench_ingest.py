@@ -73,10 +73,10 @@ def run_floor(data: Path, fmt: str, url: str) -> float:
     engine = make_engine(url)
     table = schema.forecasts.to_metadata(MetaData(), name="floor_forecasts")
     for index in table.indexes:
-        index.name = f"floor_{index.name}"
+        index.name = f"floor_{index.name}"  # type: ignore[assignment]
     for constraint in table.constraints:
         if constraint.name:
-            constraint.name = f"floor_{constraint.name}"
+            constraint.name = f"floor_{constraint.name}"  # type: ignore[assignment]
     table.drop(engine, checkfirst=True)
     table.create(engine)
     start = time.perf_counter()

@@ -82,7 +82,12 @@ def run_step(engine: Engine, config: Config, step: Step) -> None:
 # Logs of what ran are not compared; series and models are, through the references to them.
 _LOGS = {"series", "models", "quarantine", "ingest_log", "cycles"}
 # Tables of later stages, compared when the store has them.
-_DERIVED = ("window_marks", "window_point_sums", "window_level_sums", "window_quantile_sums")
+_DERIVED: tuple[str, ...] = (
+    "window_marks",
+    "window_point_sums",
+    "window_level_sums",
+    "window_quantile_sums",
+)
 _DERIVED += ("forecast_activity", "alerts", "alert_transitions")
 _DERIVED += ("notification_outbox", "outbox_alerts")
 COMPARED = tuple(t for t in INITIAL_TABLES if t not in _LOGS) + _DERIVED

@@ -10,6 +10,7 @@ specification, section 5.2).
 from __future__ import annotations
 
 import json
+from email.message import EmailMessage
 from html.parser import HTMLParser
 from pathlib import Path
 from urllib.parse import quote
@@ -34,6 +35,13 @@ def channels(smtp: SmtpRecorder, hook: HttpRecorder, folder: Path) -> list[dict[
         {"name": "ops-hook", "type": "webhook", "url": hook.url(), "secret": SECRET},
         {"name": "everything", "type": "file", "path": str(folder / "alerts.jsonl")},
     ]
+
+
+def _body(message: EmailMessage, subtype: str) -> str:
+    """The text of the message's `subtype` (plain or html) part; fails if it has none."""
+    part = message.get_body(preferencelist=(subtype,))
+    assert part is not None, f"no text/{subtype} part"
+    return str(part.get_content())
 
 
 def test_three_hundred_series_fifty_alerts_three_messages(tmp_path: Path) -> None:
@@ -66,7 +74,7 @@ def test_three_hundred_series_fifty_alerts_three_messages(tmp_path: Path) -> Non
     mail = smtp.messages[0].message
     # Subject for triage: severity first, the count, then the worst alert.
     assert mail["Subject"].startswith(f"[aftercast] CRITICAL 45 alerts - worst: {planning[7]}/")
-    text = mail.get_body(preferencelist=("plain",)).get_content()
+    text = _body(mail, "plain")
     assert text.count("Where: ") == 40
     assert "... and 5 more alerts not shown here." in text
     assert text.index(planning[7]) < text.index(planning[0])  # worst first
@@ -114,7 +122,7 @@ def test_markup_in_a_series_id_is_escaped_in_the_html(tmp_path: Path) -> None:
         seed(engine, config, {NASTY_SERIES_ID: {"team": "<b>planning</b>"}}, days=7)
         apply_findings(engine, config, findings(engine, [{"series": NASTY_SERIES_ID}]), 1, NOW)
         deliver_due(engine, config)
-    html = smtp.messages[0].message.get_body(preferencelist=("html",)).get_content()
+    html = _body(smtp.messages[0].message, "html")
     parser = _Tags()
     parser.feed(html)
     # HTML tokenizer: the markup arrived as text, never as elements.
@@ -123,5 +131,5 @@ def test_markup_in_a_series_id_is_escaped_in_the_html(tmp_path: Path) -> None:
     assert "&lt;script&gt;" in html
     # One series: the link goes to its page, the id percent-encoded (RFC 3986 section 2.1).
     page = "http://aftercast.example.test/series/" + quote(NASTY_SERIES_ID, safe="")
-    text = smtp.messages[0].message.get_body(preferencelist=("plain",)).get_content()
+    text = _body(smtp.messages[0].message, "plain")
     assert f"Dashboard: {page}" in text

@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pytest
@@ -62,7 +63,7 @@ def _pairs(engine: Engine, start: int, end: int, low: int, high: int) -> pd.Data
         )
 
 
-def _show(path: Path, capsys: pytest.CaptureFixture[str], *extra: str) -> list[dict[str, object]]:
+def _show(path: Path, capsys: pytest.CaptureFixture[str], *extra: str) -> list[dict[str, Any]]:
     capsys.readouterr()
     assert (
         main(["--config", str(path), "baselines", "show", "--json", "--series", KEY, *extra]) == 0

@@ -12,6 +12,7 @@ import logging
 import os
 import sys
 from pathlib import Path
+from typing import Any
 
 import pytest
 import yaml
@@ -30,7 +31,7 @@ def _setup(folder: Path, season: int) -> Path:
     (drop / "broken.parquet").write_text(f"not parquet, season {season}")  # new each day
     for path in drop.iterdir():
         os.utime(path, (0, 0))  # settled long ago
-    config = {
+    config: dict[str, Any] = {
         "store": {"url": f"sqlite:///{folder / 'a.db'}"},
         "series": [{"id": "s", "season": season}],
         "sources": [
@@ -38,7 +39,7 @@ def _setup(folder: Path, season: int) -> Path:
             {"name": "gone", "type": "folder", "kind": "actuals", "path": str(folder / "no")},
         ],
     }
-    for source in config["sources"]:  # type: ignore[attr-defined]
+    for source in config["sources"]:
         source.update({"glob": "*", "settle_seconds": 0, "schedule": 1})
     path = folder / "c.yaml"
     path.write_text(yaml.safe_dump(config), encoding="utf-8")

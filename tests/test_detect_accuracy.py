@@ -23,7 +23,7 @@ from aftercast.detect.accuracy import (
 def _moving_average_errors(rng: np.random.Generator, rows: int, n: int, h: int) -> np.ndarray:
     """Errors of an optimal h-step forecast: MA(h - 1) with unit variance."""
     shocks = rng.standard_normal((rows, n + h - 1))
-    return sum(shocks[:, j : j + n] for j in range(h)) / math.sqrt(h)
+    return np.asarray(sum(shocks[:, j : j + n] for j in range(h)) / math.sqrt(h))
 
 
 def _autoregressive(rng: np.random.Generator, rows: int, n: int, phi: float) -> np.ndarray:

@@ -274,12 +274,14 @@ def test_naive_times_use_the_series_time_zone(tmp_path: Path, store_url: str) ->
     )
     ingest_path(engine, config, "actuals", path)
     with engine.connect() as connection:
-        rows = dict(
+        rows: dict[str, int] = dict(
             connection.execute(
                 text(
                     "SELECT s.key, a.observed_at FROM actuals a JOIN series s ON s.id = a.series_id"
                 )
-            ).all()
+            )
+            .tuples()
+            .all()
         )
     # Berlin is UTC+2 in July: local 00:30 is 22:30 UTC the day before.
     assert rows["berlin"] == parse_instant("2026-06-30T22:30Z")

@@ -12,6 +12,7 @@ from __future__ import annotations
 import json
 from collections.abc import Iterator
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pytest
@@ -223,7 +224,7 @@ def test_text_that_is_not_unicode_and_a_season_too_long_are_rejected_not_errors(
     integer column cannot hold (the pushed case an OpenAPI fuzzer found)."""
     from aftercast.ingest import ingest_records
 
-    pushed = [
+    pushed: list[dict[str, Any]] = [
         {"series_id": "north/\ud8d0rye"},
         {"series_id": "north/wheat", "season": 10**20},
         {"series_id": "north/rye", "season": 7},

@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import re
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import pytest
@@ -53,7 +54,7 @@ def test_a_season_that_is_not_a_whole_number_in_range_is_rejected_naming_the_row
 def test_pushed_seasons_of_other_types_are_checked_alike(engine: Engine, config: Config) -> None:
     from aftercast.ingest import ingest_records
 
-    pushed = [
+    pushed: list[dict[str, Any]] = [
         {"series_id": "text", "season": "weekly"},
         {"series_id": "true", "season": True},
         {"series_id": "whole", "season": 7.0},
@@ -144,7 +145,7 @@ def test_label_numbers_are_stored_as_written_pushed_or_in_json_lines(
     engine: Engine, config: Config, tmp_path: Path
 ) -> None:
     # A null in the column makes pandas read its numbers as floats; 5 must not become "5.0".
-    pushed = [
+    pushed: list[dict[str, object]] = [
         {"series_id": "a", "label_store": 5, "label_ratio": 1.5},
         {"series_id": "b", "label_store": None, "label_ratio": None},
         {"series_id": "c", "label_store": "0017", "label_ratio": 2},
@@ -238,7 +239,7 @@ def test_label_booleans_are_stored_as_json_writes_them(
 ) -> None:
     # JSON's literals are `true` and `false` (RFC 8259, section 3); Python's str() would
     # store "True". A column of booleans only, and one mixed with text and a null.
-    pushed = [
+    pushed: list[dict[str, object]] = [
         {"series_id": "a", "label_critical": True, "label_note": "x"},
         {"series_id": "b", "label_critical": False, "label_note": True},
     ]

@@ -241,7 +241,9 @@ def test_tls_with_a_trusted_self_signed_certificate(
 ) -> None:
     cert, key = certificate
     context = server_tls_context(cert, key)
-    tls = {"starttls": context} if security == "starttls" else {"implicit_tls": context}
+    tls: dict[str, Any] = (
+        {"starttls": context} if security == "starttls" else {"implicit_tls": context}
+    )
     with SmtpRecorder(logins={"alert-bot": PASSWORD}, **tls) as server:
         channel = mail_channel(
             server.port,

@@ -17,7 +17,7 @@ from aftercast.store.db import _alembic_config, make_engine, migrate, write
 from tests.conftest import make_config, write_csv
 
 
-def _index_columns(url: str) -> list[str] | None:
+def _index_columns(url: str) -> list[str | None] | None:
     engine = make_engine(url)
     indexes = {i["name"]: i["column_names"] for i in inspect(engine).get_indexes("quarantine")}
     engine.dispose()

@@ -93,7 +93,10 @@ def shard_log(engine: Engine) -> pd.DataFrame:
 
 
 def wait_until(
-    condition: Callable[[], bool], what: str, seconds: float = 60.0, alive: Callable[[], None] = str
+    condition: Callable[[], bool],
+    what: str,
+    seconds: float = 60.0,
+    alive: Callable[[], object] = str,
 ) -> None:
     """Poll `condition`; `alive` raises if a replica that should be running has died."""
     deadline = time.monotonic() + seconds

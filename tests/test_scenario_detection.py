@@ -16,8 +16,10 @@ import time
 import numpy as np
 import pandas as pd
 import pytest
+from sqlalchemy import Engine
 
 from aftercast.benchmarks import make_benchmarks
+from aftercast.config import Config
 from aftercast.detect.run import detect
 from aftercast.matching import match
 from aftercast.scenario import Scenario, ScenarioSpec, generate, series_ids
@@ -44,15 +46,17 @@ def _scenario() -> Scenario:
     return generate(spec)
 
 
-def _cycle(engine: object, config: object, scenario: Scenario, day: int) -> None:
+def _cycle(engine: Engine, config: Config, scenario: Scenario, day: int) -> None:
     now = cycle_time(scenario, day)
-    with write(engine) as connection:  # type: ignore[arg-type]
-        cycle_id = connection.execute(
+    with write(engine) as connection:
+        inserted = connection.execute(
             schema.cycles.insert().values(now=now, started_at=int(time.time()), stats="{}")
-        ).inserted_primary_key[0]
-    make_benchmarks(engine, config, now)  # type: ignore[arg-type]
-    match(engine, now)  # type: ignore[arg-type]
-    detect(engine, config, now, int(cycle_id))  # type: ignore[arg-type]
+        ).inserted_primary_key
+        assert inserted is not None
+        cycle_id = inserted[0]
+    make_benchmarks(engine, config, now)
+    match(engine, now)
+    detect(engine, config, now, int(cycle_id))
 
 
 @pytest.mark.slow

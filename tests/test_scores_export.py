@@ -9,7 +9,9 @@ from __future__ import annotations
 import csv
 import functools
 import json
+from collections.abc import Mapping
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -94,7 +96,7 @@ def store(
     return config, expected
 
 
-def _check_row(row: dict[str, object], expected: dict[str, float]) -> None:
+def _check_row(row: Mapping[str, Any], expected: dict[str, float]) -> None:
     for column, value in row.items():
         if column in expected:
             assert value is not None, column

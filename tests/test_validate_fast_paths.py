@@ -7,6 +7,8 @@ values to the bit (signed zeros included), the same reasons on the same rows.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -38,7 +40,7 @@ def _slow_number(frame: pd.DataFrame, column: str, required: bool) -> tuple[pd.S
     return values.where(~empty), reasons.reason
 
 
-def _same_numbers(cells: list[object], dtype: object = object, required: bool = True) -> None:
+def _same_numbers(cells: Sequence[object], dtype: object = object, required: bool = True) -> None:
     frame = pd.DataFrame({"x": pd.Series(cells, dtype=dtype)})
     expected, expected_reasons = _slow_number(frame, "x", required)
     reasons = Reasons(frame.index)
