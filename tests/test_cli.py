@@ -12,9 +12,13 @@ import sys
 from pathlib import Path
 
 import pytest
+from alembic.script import ScriptDirectory
 
+import aftercast.store.migrations
 from aftercast.cli import main
 from tests.conftest import write_csv
+
+VERSIONS = Path(aftercast.store.migrations.__file__).parent / "versions"
 
 
 @pytest.fixture
@@ -28,6 +32,12 @@ def test_ingest_json_counts_and_exit_codes(
     workdir: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
     assert main(["init"]) == 0
+    # One line naming the newest revision file under migrations/versions (not every head).
+    newest = max(VERSIONS.glob("0*.py")).stem
+    assert capsys.readouterr().out.splitlines() == [
+        f"store ready: schema current (newest revision {newest}, one of "
+        f"{len(ScriptDirectory(str(VERSIONS.parent)).get_heads())} branch heads)"
+    ]
     good = write_csv(workdir / "a.csv", "series_id,observed_at,value", "s,2026-01-01,1", "s,bad,2")
     capsys.readouterr()
     assert main(["ingest", "actuals", str(good), "--json"]) == 0

@@ -76,8 +76,25 @@ def cmd_init(args: argparse.Namespace) -> int:
     revision = migrate(engine)
     for line in sync_series_entries(engine, config):  # the config's `series:` entries win
         print(f"aftercast: warning: {line}", file=sys.stderr)
-    print(f"store ready at schema revision {revision}")
+    print(f"store ready: {schema_summary(revision)}")
     return 0
+
+
+def schema_summary(heads: str) -> str:
+    """A comma-joined list of branch heads, said in a few words.
+
+    Each feature's migrations branch from the first revision, so a current store is at one
+    head per branch; listing them all told the reader nothing the newest one does not.
+
+    >>> schema_summary("0002_detect,0011_current_frequencies,0003_alerts")
+    'schema current (newest revision 0011_current_frequencies, one of 3 branch heads)'
+    >>> schema_summary("0001")
+    'schema current (revision 0001)'
+    """
+    names = sorted(heads.split(","))
+    if len(names) == 1:
+        return f"schema current (revision {names[0]})"
+    return f"schema current (newest revision {names[-1]}, one of {len(names)} branch heads)"
 
 
 def cmd_ingest(args: argparse.Namespace) -> int:
