@@ -34,6 +34,7 @@ from aftercast.store import schema
 from aftercast.store.bulk import insert_frame, key_rows, read_frame, stage_keys
 from aftercast.store.catalog import ensure_models
 from aftercast.store.db import refresh_statistics, write
+from aftercast.store.parallel import each
 from aftercast.store.schema_detect import forecast_activity
 
 _FORECAST_COLUMNS = (
@@ -338,11 +339,14 @@ def make_benchmarks(
         return total
     refresh_statistics(engine, ("forecasts", "actuals", "match_queue"))
     batch = (queued["n"].cumsum() // batch_rows).to_numpy()
-    for index in np.unique(batch):
+    series = queued["series_id"].to_numpy(np.int64)
+
+    def run(index: int) -> BenchmarkStats:
         with write(engine) as connection:
-            stats = _benchmark_batch(
-                connection, config, queued["series_id"].to_numpy(np.int64)[batch == index]
-            )
+            return _benchmark_batch(connection, config, series[batch == index])
+
+    # Batches hold disjoint series: on PostgreSQL two run at once (`store.parallel`).
+    for stats in each(engine, np.unique(batch).tolist(), run):
         total.series += stats.series
         total.issue_times += stats.issue_times
         total.forecasts += stats.forecasts

@@ -28,6 +28,7 @@ from aftercast.store.bulk import (
 )
 from aftercast.store.catalog import register_levels
 from aftercast.store.db import refresh_statistics, write
+from aftercast.store.parallel import each
 
 PAIR_COLUMNS = [c.name for c in schema.pairs.columns]
 _CANDIDATE_COLUMNS = (
@@ -191,9 +192,14 @@ def match(
     sizes = queue.groupby("series_id").size()
     batch_of = (sizes.cumsum() // batch_rows).rename("batch")
     queue = queue.join(batch_of, on="series_id")
-    for _, batch in queue.groupby("batch", sort=True):
+    batches = [batch.drop(columns="batch") for _, batch in queue.groupby("batch", sort=True)]
+
+    def run(batch: pd.DataFrame) -> tuple[pd.DataFrame, int]:
         with write(engine) as connection:
-            keys, scored = _match_batch(connection, batch.drop(columns="batch"), now)
+            return _match_batch(connection, batch, now)
+
+    # Batches hold disjoint series: on PostgreSQL two run at once (`store.parallel`).
+    for keys, scored in each(engine, batches, run):
         touched.append(keys)
         stats.pairs_scored += scored
     stats.touched = pd.concat(touched, ignore_index=True).drop_duplicates() if touched else None
