@@ -13,9 +13,12 @@ every other key's window holds the same pairs as before. Each recompute is a GRO
 that key's pairs inside the window, never the history. Everything is recomputed from
 scratch when there is no earlier refresh, the window's definition changed, the clock jumped
 by a whole window, or a cycle since the last refresh ended without reaching this stage (its
-matched pairs are unknown). Readers get rows for the refreshed clock from the stored sums
-and for any other clock straight from the pairs, page by page of series, with the same sums
-and the same arithmetic (`windows`).
+matched pairs are unknown). Each of a window's three parts (point, level and quantile sums)
+goes through all this on its own, in its own transaction with its own mark, so the parts can
+be refreshed side by side; a crash between them leaves each part consistent with its mark.
+Readers get rows for the refreshed clock from the stored sums once every part is at it, and
+for any other clock straight from the pairs, page by page of series, with the same sums and
+the same arithmetic (`windows`).
 """
 
 from __future__ import annotations
@@ -32,6 +35,8 @@ from aftercast.config import Config, WindowConfig
 from aftercast.errors import AftercastError
 from aftercast.store.bulk import read_frame
 from aftercast.store.db import write
+from aftercast.store.parallel import each
+from aftercast.store.schema_windows import SUM_TABLES
 from aftercast.store.window_delta import (
     apply_strips,
     rescored_keys,
@@ -39,6 +44,7 @@ from aftercast.store.window_delta import (
     without_extremes,
 )
 from aftercast.store.window_sums import (
+    ALL_PARTS,
     compute_sums,
     delete_stored,
     read_stored,
@@ -75,9 +81,10 @@ def find_window(config: Config, name: str | None) -> WindowConfig:
     raise AftercastError(f"window {name!r}: no such window; configured: {known}")
 
 
-def _mark(connection: Connection, name: str) -> dict[str, Any] | None:
+def _mark(connection: Connection, name: str, part: str) -> dict[str, Any] | None:
     row = connection.execute(
-        text("SELECT spec, now, cycle_id FROM window_marks WHERE window_name = :w"), {"w": name}
+        text("SELECT spec, now, cycle_id FROM window_marks WHERE window_name = :w AND part = :p"),
+        {"w": name, "p": part},
     ).one_or_none()
     return None if row is None else dict(row._mapping)
 
@@ -98,11 +105,15 @@ def _missed_cycles(connection: Connection, mark: dict[str, Any], latest: int) ->
 
 
 def is_current(connection: Connection, window: WindowConfig, now: int) -> bool:
-    """Do the stored sums of `window` hold exactly its pairs at `now`?"""
-    mark = _mark(connection, window.name)
-    if mark is None or mark["spec"] != window_spec(window) or int(mark["now"]) != now:
-        return False
-    return not _missed_cycles(connection, mark, _latest_cycle(connection) + 1)
+    """Do the stored sums of `window`, every part of them, hold exactly its pairs at `now`?"""
+    latest = _latest_cycle(connection) + 1
+    for part in ALL_PARTS:
+        mark = _mark(connection, window.name, part)
+        if mark is None or mark["spec"] != window_spec(window) or int(mark["now"]) != now:
+            return False
+        if _missed_cycles(connection, mark, latest):
+            return False
+    return True
 
 
 def _swept_keys(
@@ -134,6 +145,7 @@ class _Plan:
 def _delta_plan(
     connection: Connection,
     window: WindowConfig,
+    part: str,
     before: int,
     now: int,
     touched: pd.DataFrame | None,
@@ -154,7 +166,7 @@ def _delta_plan(
     parts.append(
         read_frame(
             connection,
-            "SELECT DISTINCT series_id, model_id FROM window_point_sums "
+            f"SELECT DISTINCT series_id, model_id FROM {SUM_TABLES[part][0].name} "
             "WHERE window_name = :w AND series_id % :r = :k",
             {"w": window.name, "r": REBASE_DAYS, "k": (now // DAY) % REBASE_DAYS},
         )
@@ -166,12 +178,14 @@ def _delta_plan(
 def _plan(
     connection: Connection,
     window: WindowConfig,
+    part: str,
     now: int,
     touched: pd.DataFrame | None,
     latest: int,
 ) -> _Plan:
-    """What changed since the last refresh, and so what to do (see the module docstring)."""
-    mark = _mark(connection, window.name)
+    """What changed since `part` was last refreshed, and so what to do (see the module
+    docstring)."""
+    mark = _mark(connection, window.name, part)
     if (
         mark is None
         or mark["spec"] != window_spec(window)
@@ -182,7 +196,7 @@ def _plan(
     if window.days is not None and abs(now - before) >= window.days * DAY:
         return _Plan(None)
     if window.days is not None and now > before:
-        return _delta_plan(connection, window, before, now, touched)
+        return _delta_plan(connection, window, part, before, now, touched)
     parts = [_swept_keys(connection, window, before, now)] if before != now else []
     if touched is not None and len(touched):
         parts.append(touched[KEY])
@@ -191,28 +205,36 @@ def _plan(
     keys = pd.concat(parts, ignore_index=True).astype("int64").drop_duplicates()
     if window.points is not None and now >= before:
         # The N latest periods only move up as the clock does: no need to rank older ones.
+        # The floors come from the point sums whichever part this is: a floor is only a hint,
+        # kept where the window above it is full (`window_sums._points_cutoffs`).
         keys = stored_floors(connection, window.name, keys)
     return _Plan(keys.reset_index(drop=True))
 
 
 def _sums_to_store(
-    connection: Connection, window: WindowConfig, now: int, keys: pd.DataFrame
+    connection: Connection, window: WindowConfig, part: str, now: int, keys: pd.DataFrame
 ) -> WindowSums:
-    """The sums to store for `keys`; a `days` window stores no extremes, whichever path
-    (recompute or delta) brought it to the clock."""
-    sums = compute_sums(connection, window, now, keys)
+    """The sums of `part` to store for `keys`; a `days` window stores no extremes, whichever
+    path (recompute or delta) brought it to the clock."""
+    sums = compute_sums(connection, window, now, keys, [part])
     return without_extremes(sums) if window.days is not None else sums
 
 
-def _write_mark(connection: Connection, window: WindowConfig, now: int, cycle_id: int) -> None:
-    connection.execute(text("DELETE FROM window_marks WHERE window_name = :w"), {"w": window.name})
+def _write_mark(
+    connection: Connection, window: WindowConfig, part: str, now: int, cycle_id: int
+) -> None:
+    connection.execute(
+        text("DELETE FROM window_marks WHERE window_name = :w AND part = :p"),
+        {"w": window.name, "p": part},
+    )
     connection.execute(
         text(
-            "INSERT INTO window_marks (window_name, spec, now, cycle_id, refreshed_at) "
-            "VALUES (:w, :spec, :now, :cycle, :at)"
+            "INSERT INTO window_marks (window_name, part, spec, now, cycle_id, refreshed_at) "
+            "VALUES (:w, :p, :spec, :now, :cycle, :at)"
         ),
         {
             "w": window.name,
+            "p": part,
             "spec": window_spec(window),
             "now": now,
             "cycle": cycle_id,
@@ -238,34 +260,37 @@ def series_pages(connection: Connection, size: int, by: str = "id") -> Iterator[
         yield page
 
 
-def _refresh_window(
+def _refresh_part(
     connection: Connection,
     window: WindowConfig,
+    part: str,
     now: int,
     touched: pd.DataFrame | None,
-    latest: int,
 ) -> WindowRefresh:
-    plan = _plan(connection, window, now, touched, latest)
+    """Bring the sums of one part of `window` to `now`, with that part's mark."""
+    latest = _latest_cycle(connection)
+    plan = _plan(connection, window, part, now, touched, latest)
     if plan.keys is None:
-        delete_stored(connection, window.name, None)
+        delete_stored(connection, window.name, None, [part])
         count = 0
         for page in series_pages(connection, PAGE_SERIES):
             ids = pd.DataFrame({"series_id": page["id"].to_numpy()})
-            sums = _sums_to_store(connection, window, now, ids)
+            sums = _sums_to_store(connection, window, part, now, ids)
             store_sums(connection, window.name, sums)
-            count += len(sums.points[KEY].drop_duplicates())
+            count += len(getattr(sums, part)[KEY].drop_duplicates())
         refresh = WindowRefresh(window.name, True, count)
     else:
         if plan.delta_from is not None:
             span = int((window.days or 0) * DAY)
-            apply_strips(connection, window.name, plan.delta_from, now, span)
+            apply_strips(connection, window.name, plan.delta_from, now, span, [part])
         keys = plan.keys
         for start in range(0, len(keys), _KEYS_PER_BATCH):
             batch = keys.iloc[start : start + _KEYS_PER_BATCH]
-            delete_stored(connection, window.name, batch[KEY])
-            store_sums(connection, window.name, _sums_to_store(connection, window, now, batch))
+            delete_stored(connection, window.name, batch[KEY], [part])
+            sums = _sums_to_store(connection, window, part, now, batch)
+            store_sums(connection, window.name, sums)
         refresh = WindowRefresh(window.name, False, len(keys))
-    _write_mark(connection, window, now, latest)
+    _write_mark(connection, window, part, now, latest)
     return refresh
 
 
@@ -275,12 +300,23 @@ def refresh_windows(
     """The cycle's windows stage: bring every configured window's stored sums to `now`.
 
     `touched` holds the (series_id, model_id) keys whose pairs matching scored this cycle.
+    Each part of each window (its point, level and quantile sums) is refreshed in its own
+    transaction, two at a time on PostgreSQL (`store.parallel`). The report per window says
+    whether any part was recomputed from scratch, and the most keys a part recomputed.
     """
+    units = [(window, part) for window in config.all_windows() for part in ALL_PARTS]
+
+    def refresh(unit: tuple[WindowConfig, str]) -> WindowRefresh:
+        with write(engine) as connection:
+            return _refresh_part(connection, *unit, now, touched)
+
+    done = each(engine, units, refresh)
     refreshes = []
     for window in config.all_windows():
-        with write(engine) as connection:
-            latest = _latest_cycle(connection)
-            refreshes.append(_refresh_window(connection, window, now, touched, latest))
+        parts = [r for (w, _), r in zip(units, done, strict=True) if w is window]
+        refreshes.append(
+            WindowRefresh(window.name, any(r.full for r in parts), max(r.keys for r in parts))
+        )
     return refreshes
 
 

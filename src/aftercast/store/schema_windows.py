@@ -3,9 +3,9 @@
 For each configured window the cycle keeps the additive sums of the pairs inside it, per
 (series, model, horizon) in `window_point_sums`, per interval level in `window_level_sums` and
 per quantile in `window_quantile_sums`, as of the clock of the cycle that refreshed them; that
-clock, the window's definition and the cycle are in `window_marks`. A cycle recomputes only the
-keys whose pairs changed or whose window edge moved past pairs, and readers asking for the
-same clock read these rows instead of the pairs.
+clock, the window's definition and the cycle are in `window_marks`, one row per part. A cycle
+recomputes only the keys whose pairs changed or whose window edge moved past pairs, and
+readers asking for the same clock read these rows instead of the pairs.
 """
 
 from __future__ import annotations
@@ -27,10 +27,13 @@ def _key_columns(*extra: Column) -> list[Column]:
     ]
 
 
+# One mark per window and part ("points", "levels", "quantiles": the keys of SUM_TABLES): each
+# part's sums are refreshed in a transaction of their own, so each carries its own clock.
 window_marks = Table(
     "window_marks",
     metadata,
     Column("window_name", String(_WINDOW), primary_key=True),
+    Column("part", String(16), primary_key=True),
     Column("spec", String(255), nullable=False),  # e.g. "days=28" or "points=60"
     Column("now", BigInteger, nullable=False),
     Column("cycle_id", BigInteger, nullable=False),

@@ -13,12 +13,14 @@ caller clears by recomputing a rotating share of the keys from scratch every cyc
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import pandas as pd
 from sqlalchemy import Connection, text
 
 from aftercast.store.bulk import read_frame
 from aftercast.store.schema_windows import SUM_TABLES
-from aftercast.store.window_sums import GROUP, PARTS, aggregates_select
+from aftercast.store.window_sums import ALL_PARTS, GROUP, PARTS, aggregates_select
 from aftercast.windows import EXTREMES, HORIZON_KEY, WindowSums
 
 
@@ -78,9 +80,15 @@ def _stage_strips(connection: Connection, params: dict[str, int]) -> str:
 
 
 def apply_strips(
-    connection: Connection, window_name: str, before: int, now: int, span: int
+    connection: Connection,
+    window_name: str,
+    before: int,
+    now: int,
+    span: int,
+    parts: Sequence[str] = ALL_PARTS,
 ) -> None:
-    """Move the stored sums of a `span`-second window from `before` to `now` by deltas.
+    """Move the stored sums (of `parts`) of a `span`-second window from `before` to `now`
+    by deltas.
 
     One INSERT ... SELECT ... ON CONFLICT DO UPDATE per table (both stores speak it): the
     database sums the two strips with a sign per pair, +1 entering and -1 leaving (the strips
@@ -95,7 +103,8 @@ def apply_strips(
         connection,
         {"before": before, "now": now, "left_from": before - span, "left_to": now - span},
     )
-    for part, (table, extra) in SUM_TABLES.items():
+    for part in parts:
+        table, extra = SUM_TABLES[part]
         join, extra_column, aggregates = PARTS[part]
         group = f"{GROUP}, {extra_column}" if extra_column else GROUP
         keys = [*HORIZON_KEY, *([extra] if extra else [])]

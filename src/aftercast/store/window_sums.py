@@ -11,6 +11,7 @@ The same sums are stored per window in the tables of `schema_windows` and read b
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 import pandas as pd
@@ -68,6 +69,7 @@ _EXTREMES_SELECT = (
     "MIN(p.target_period) AS first_period"
 )
 GROUP = "p.series_id, p.model_id, p.horizon"
+ALL_PARTS = ("points", "levels", "quantiles")
 # Per part of `WindowSums`: the joins to the pairs, the extra key column and the aggregates.
 PARTS: dict[str, tuple[str, str | None, list[Aggregate]]] = {
     "points": ("", None, POINT_AGGREGATES),
@@ -166,10 +168,15 @@ def _selection(
     return f"{join} WHERE p.target_period >= c.first_period AND p.target_at <= :now", {"now": now}
 
 
-def _grouped_sums(connection: Connection, chosen: str, params: dict[str, Any]) -> WindowSums:
-    """The three GROUP BY queries over the pairs that `chosen` (JOIN ... WHERE ...) selects."""
-    frames = {}
-    for part, (join, extra, aggregates) in PARTS.items():
+def _grouped_sums(
+    connection: Connection, chosen: str, params: dict[str, Any], parts: Sequence[str]
+) -> WindowSums:
+    """The GROUP BY queries of `parts` over the pairs that `chosen` (JOIN ... WHERE ...)
+    selects; the other parts come back empty."""
+    empty = WindowSums.empty()
+    frames = {part: getattr(empty, part) for part in PARTS}
+    for part in parts:
+        join, extra, aggregates = PARTS[part]
         keys = f"{GROUP}, {extra}" if extra else GROUP
         selected = aggregates_select(aggregates) + ("" if extra else f", {_EXTREMES_SELECT}")
         frames[part] = read_frame(
@@ -181,16 +188,21 @@ def _grouped_sums(connection: Connection, chosen: str, params: dict[str, Any]) -
 
 
 def compute_sums(
-    connection: Connection, window: WindowConfig, now: int, keys: pd.DataFrame
+    connection: Connection,
+    window: WindowConfig,
+    now: int,
+    keys: pd.DataFrame,
+    parts: Sequence[str] = ALL_PARTS,
 ) -> WindowSums:
-    """Sums of the pairs inside `window` at `now` for `keys` (see the module docstring)."""
+    """Sums of the pairs inside `window` at `now` for `keys` (see the module docstring), of
+    the named `parts` (the others empty)."""
     if keys.empty:
         return WindowSums.empty()
     columns = list(keys.columns)
     # One staging table per shape of key: a temporary table keeps the columns it was made with.
     staged = stage_keys(connection, "window_keys_" + "".join(c[0] for c in columns), keys)
     chosen, params = _selection(connection, window, now, staged, keys)
-    return _grouped_sums(connection, chosen, params)
+    return _grouped_sums(connection, chosen, params, parts)
 
 
 _INTEGERS = {"n", "n_ape", "n_sape", "n_scaled", "n_sq_scaled", "hits", "below", *EXTREMES}
@@ -212,10 +224,16 @@ def _typed(sums: WindowSums) -> WindowSums:
     )
 
 
-def delete_stored(connection: Connection, window_name: str, keys: pd.DataFrame | None) -> None:
+def delete_stored(
+    connection: Connection,
+    window_name: str,
+    keys: pd.DataFrame | None,
+    parts: Sequence[str] = ALL_PARTS,
+) -> None:
     """Remove the stored sums of `window_name` for `keys` (series_id, model_id), or all."""
     staged = stage_keys(connection, "window_drop", keys) if keys is not None else None
-    for table, _extra in SUM_TABLES.values():
+    for part in parts:
+        table = SUM_TABLES[part][0]
         sql = f"DELETE FROM {table.name} WHERE window_name = :w"
         if staged is not None:
             # A row-value IN probes the key index per staged key; a correlated EXISTS made
