@@ -113,6 +113,15 @@ def assert_same_rows(got: pd.DataFrame, want: pd.DataFrame) -> None:
         np.testing.assert_array_equal(spans, ordered(want, ["first_target", "last_target"]))
 
 
+def assert_stored_windows_exact(engine: Engine, config: Config, now: int) -> None:
+    """Both windows' rows at `now`, as readers get them, equal a full recomputation."""
+    for name in ("short", "latest"):
+        assert_same_rows(
+            current_windows(engine, config, now, name),
+            full_recomputation(engine, config, now, name),
+        )
+
+
 def sql_rows(engine: Engine, config: Config, now: int, name: str) -> pd.DataFrame:
     """Window rows computed by the SQL sums straight from the pairs (never the stored sums)."""
     window = find_window(config, name)
@@ -244,11 +253,7 @@ def test_a_refresh_recomputes_only_touched_and_swept_keys(new_store: Callable[[]
         refreshed = refresh_windows(engine, config, later, None)
         on_turn = [s for s in (1, 2) if s % REBASE_DAYS == (later // DAY) % REBASE_DAYS]
         assert [(r.full, r.keys) for r in refreshed] == [(False, 2 * len(on_turn)), (False, 4)]
-        for name in ("short", "latest"):
-            assert_same_rows(
-                current_windows(engine, config, later, name),
-                full_recomputation(engine, config, later, name),
-            )
+        assert_stored_windows_exact(engine, config, later)
         assert_same_rows(
             sql_rows(engine, config, now, "short"), full_recomputation(engine, config, now, "short")
         )
@@ -272,11 +277,7 @@ def test_a_revision_inside_a_moving_window_is_recomputed(
             ingest_records(engine, config, "actuals", actual_rows(series, 5, [50]), "revision")
         later = now + 6 * 3600
         refresh_windows(engine, config, later, match(engine, later).touched)
-        for name in ("short", "latest"):
-            assert_same_rows(
-                current_windows(engine, config, later, name),
-                full_recomputation(engine, config, later, name),
-            )
+        assert_stored_windows_exact(engine, config, later)
     finally:
         engine.dispose()
 
