@@ -37,6 +37,7 @@ from tests.test_windows_store import (
     forecast_rows,
     full_recomputation,
     new_store,
+    one_series_refreshed,
     open_store,
 )
 
@@ -93,10 +94,7 @@ def test_the_revision_gives_the_marks_a_part_and_the_next_cycle_recomputes(
 ) -> None:
     engine, config = open_store(new_store(), **WINDOWS)
     try:
-        ingest_records(engine, config, "actuals", actual_rows("s1", 0, list(range(6))), "t")
-        ingest_records(engine, config, "forecasts", forecast_rows("s1", "m1", 1, 5), "t")
-        now = int((START + pd.Timedelta(days=4)).timestamp())
-        refresh_windows(engine, config, now, match(engine, now).touched)
+        now = one_series_refreshed(engine, config, actual_days=6, issue_day=1, level=5, day=4)
         with engine.begin() as connection:
             command.downgrade(_alembic_config(connection), "0012_window_part_marks@-1")
             columns = {c["name"] for c in inspect(connection).get_columns("window_marks")}

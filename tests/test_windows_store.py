@@ -282,16 +282,26 @@ def test_a_revision_inside_a_moving_window_is_recomputed(
         engine.dispose()
 
 
+def one_series_refreshed(
+    engine: Engine, config: Config, actual_days: int, issue_day: int, level: int, day: int
+) -> int:
+    """s1's actuals of its first `actual_days` days and m1's forecasts issued on `issue_day`
+    ingested, then the windows refreshed on `day`; returns that clock."""
+    days = list(range(actual_days))
+    ingest_records(engine, config, "actuals", actual_rows("s1", 0, days), "t")
+    ingest_records(engine, config, "forecasts", forecast_rows("s1", "m1", issue_day, level), "t")
+    now = int((START + pd.Timedelta(days=day)).timestamp())
+    refresh_windows(engine, config, now, match(engine, now).touched)
+    return now
+
+
 def test_a_late_forecast_enters_a_points_window_not_yet_full(
     new_store: Callable[[], str],
 ) -> None:
     # The latest 4 periods hold only 2 until a forecast made earlier arrives late.
     engine, config = open_store(new_store(), **WINDOWS)
     try:
-        ingest_records(engine, config, "actuals", actual_rows("s1", 0, list(range(8))), "t")
-        ingest_records(engine, config, "forecasts", forecast_rows("s1", "m1", 5, 3), "t")
-        now = int((START + pd.Timedelta(days=8)).timestamp())
-        refresh_windows(engine, config, now, match(engine, now).touched)
+        now = one_series_refreshed(engine, config, actual_days=8, issue_day=5, level=3, day=8)
         ingest_records(engine, config, "forecasts", forecast_rows("s1", "m1", 1, 3), "late")
         refresh_windows(engine, config, now + 3600, match(engine, now + 3600).touched)
         got = current_windows(engine, config, now + 3600, "latest")
