@@ -313,7 +313,7 @@ def refresh_windows(
     done = each(engine, units, refresh)
     refreshes = []
     for window in config.all_windows():
-        parts = [r for (w, _), r in zip(units, done, strict=True) if w is window]
+        parts = [r for (w, _), r in zip(units, done, strict=True) if w.name == window.name]
         refreshes.append(
             WindowRefresh(window.name, any(r.full for r in parts), max(r.keys for r in parts))
         )
